@@ -1,5 +1,10 @@
 """rnnkit: train, diagnose and tune simple recurrent networks on your own time series."""
 from ._config import Config as Config
 from ._errors import DataError as DataError
+from ._cells import init_params as init_params
+from ._model import hidden_states as hidden_states
+from ._model import outputs as outputs
+from ._model import loss as loss
+from ._model import predict_classes as predict_classes
 
 __version__ = "0.1.0"

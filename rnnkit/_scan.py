@@ -1,0 +1,124 @@
+"""The recurrence itself: a forward lax.scan and its fast backward pass (custom VJP).
+
+Everything here is time-major and batched: xs (T, B, I), states (T, B, H),
+mask (T, B, 1) bool or None. The public, batch-major, checked functions live in
+``_model.py``.
+
+Why a custom VJP. Autodiff of ``lax.scan`` computes, inside the reverse loop,
+every per-step contribution to dV, dU and db and adds them up step by step:
+T small (B, H) x (H, H) products plus their accumulation. The backward pass
+here carries only the gradient flowing into the previous state,
+dh_{t-1} = dA_t V^T (plus the held part on padded steps), stores every dA_t,
+and after the loop takes
+
+    dV = sum_t h_{t-1}^T dA_t,   dU = sum_t x_t^T dA_t,   db = sum_t dA_t
+
+as single large products contracting the (T, B) axes, which the CPU runs at
+matrix-multiply speed. The equations are those of Goodfellow, Bengio &
+Courville (2016), sec. 10.2.2, in the row-vector convention.
+"""
+from __future__ import annotations
+
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+from jax import lax
+
+from ._cells import get_activation
+
+# Contract the (T, B) axes of two (T, B, *) arrays: (T,B,P) x (T,B,Q) -> (P, Q).
+_TB_CONTRACT = (((0, 1), (0, 1)), ((), ()))
+
+
+def project(xs, U, b):
+    """The input projection x_t U + b for every step, as ONE product.
+
+    Args:
+      xs: (T, B, I).  U: (I, H).  b: (H,).
+
+    Returns:
+      (T, B, H)
+    """
+    xu = lax.dot_general(xs, U, (((2,), (0,)), ((), ())))  # (T, B, H)
+    return xu + b[None, None, :]
+
+
+def scan_states(act: str, xp, V, h0, mask):
+    """Run the recurrence h_t = phi(xp_t + h_{t-1} V) over time.
+
+    Args:
+      act: activation name (static).
+      xp: projected inputs x_t U + b, (T, B, H).
+      V: (H, H).  h0: (B, H).
+      mask: (T, B, 1) bool or None; a False step holds the state.
+
+    Returns:
+      hs (T, B, H): the state after every step.
+    """
+    phi = get_activation(act).value
+    if mask is None:
+        # Branch-free body; the carry is one array.
+        def step(h, p):
+            h = phi(p + h @ V)  # (B, H)
+            return h, h
+        _, hs = lax.scan(step, h0, xp)
+    else:
+        def step(h, inp):
+            p, m = inp
+            h = jnp.where(m, phi(p + h @ V), h)  # (B, H); padded rows hold
+            return h, h
+        _, hs = lax.scan(step, h0, (xp, mask))
+    return hs
+
+
+def states_autodiff(act, xs, U, V, b, h0, mask):
+    """Hidden states whose gradient is JAX autodiff of the scan (the plain version)."""
+    return scan_states(act, project(xs, U, b), V, h0, mask)
+
+
+@partial(jax.custom_vjp, nondiff_argnums=(0,))
+def states_fast(act, xs, U, V, b, h0, mask):
+    """Hidden states (T, B, H) with the fast hand-written backward pass.
+
+    Same value as ``states_autodiff``; same gradient to rounding.
+    """
+    return scan_states(act, project(xs, U, b), V, h0, mask)
+
+
+def _fast_fwd(act, xs, U, V, b, h0, mask):
+    hs = scan_states(act, project(xs, U, b), V, h0, mask)  # (T, B, H)
+    return hs, (xs, U, V, h0, hs, mask)
+
+
+def _fast_bwd(act, res, g):
+    """Reverse pass. g = dL/dh_t from the outputs, (T, B, H)."""
+    xs, U, V, h0, hs, mask = res
+    # 1. phi'(a_t) for every step at once, written through h_t.
+    d = get_activation(act).grad_from_output(hs)  # (T, B, H)
+    Vt = V.T
+    if mask is None:
+        def step(carry, inp):
+            g_t, d_t = inp
+            da = (g_t + carry) * d_t  # (B, H) dL/da_t
+            return da @ Vt, da  # carry: dA_t V^T = dL/dh_{t-1} through the recurrence
+        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, d), reverse=True)
+    else:
+        d = jnp.where(mask, d, jnp.zeros_like(d))  # padded steps: no pre-activation
+        def step(carry, inp):
+            g_t, d_t, m_t = inp
+            gh = g_t + carry  # (B, H) dL/dh_t
+            da = gh * d_t
+            # a padded step passes dL/dh_t unchanged to h_{t-1} (h_t = h_{t-1})
+            return da @ Vt + jnp.where(m_t, jnp.zeros_like(gh), gh), da
+        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, d, mask), reverse=True)
+    # 2. The parameter gradients as single products over all T*B rows.
+    h_prev = jnp.concatenate([h0[None], hs[:-1]], axis=0)  # (T, B, H)
+    dV = lax.dot_general(h_prev, da, _TB_CONTRACT)  # (H, H)
+    dU = lax.dot_general(xs, da, _TB_CONTRACT)  # (I, H)
+    db = jnp.sum(da, axis=(0, 1))  # (H,)
+    dxs = lax.dot_general(da, U, (((2,), (1,)), ((), ())))  # (T, B, I); dropped by XLA when unused
+    return dxs, dU, dV, db, dh0, None
+
+
+states_fast.defvjp(_fast_fwd, _fast_bwd)
