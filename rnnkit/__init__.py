@@ -6,6 +6,8 @@ from ._model import hidden_states as hidden_states
 from ._model import outputs as outputs
 from ._model import loss as loss
 from ._model import predict_classes as predict_classes
+from ._gradcheck import check_gradients as check_gradients
+from . import reference as reference
 from . import datasets as datasets
 
 __version__ = "0.1.0"
