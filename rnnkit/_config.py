@@ -17,6 +17,7 @@ TASKS = ("regression", "classification")
 MODES = ("many-to-one", "many-to-many")
 SCALES = ("standard", "minmax", "none")
 MISSING = ("error", "ffill", "interpolate")
+SHORT = ("error", "drop")
 ACTIVATIONS = ("tanh", "sigmoid", "relu", "linear")  # order = index used as data
 INITS = ("glorot", "orthogonal", "identity")
 OPTIMIZERS = ("sgd", "momentum", "rmsprop", "adam", "adamw")
@@ -49,6 +50,7 @@ class Config:
     scale: str = "standard"  # "standard", "minmax" or "none"; fit on the training part only
     missing: str = "error"  # NaN policy: "error", "ffill" or "interpolate"
     season: Optional[Union[int, str]] = "auto"  # season length in steps; "auto" from the time step; None: no season
+    short_sequences: str = "error"  # a sequence shorter than window+horizon: "error", or "drop" it (counted)
     # --- model ---
     hidden: int = 32  # hidden units H
     activation: str = "tanh"  # state nonlinearity: tanh, sigmoid, relu, linear
@@ -122,7 +124,7 @@ def _is_int(v):
 def _check(c: Config) -> None:
     """Check every field; raise ValueError/TypeError naming the field and the fix."""
     for name, choices in (("task", TASKS), ("mode", MODES), ("scale", SCALES),
-                          ("missing", MISSING), ("activation", ACTIVATIONS),
+                          ("missing", MISSING), ("short_sequences", SHORT), ("activation", ACTIVATIONS),
                           ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES)):
         v = getattr(c, name)
         if v not in choices:
@@ -163,8 +165,11 @@ def _check(c: Config) -> None:
         raise ValueError(f"`window` (={c.window!r}) must be a whole number >= 1 or 'full'")
     if not _is_int(c.horizon) or c.horizon < 0:
         raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number >= 0")
-    if (c.task == "regression" and c.target_as_input and c.horizon == 0
-            and c.window != "full"):
+    if c.task == "regression" and c.target_as_input and c.window == "full":
+        raise ValueError("`window`='full' predicts the target at each sequence's last row; with "
+                         "`target_as_input`=true the network would see that value as its last input; "
+                         "set `target_as_input`=false")
+    if c.task == "regression" and c.target_as_input and c.horizon == 0:
         raise ValueError("`horizon`=0 with `target_as_input`=true would show the network the value "
                          "it must predict; set `horizon` >= 1 or `target_as_input`=false")
 

@@ -1,0 +1,229 @@
+"""Split rows into train / val / test parts and find the windows inside each part.
+
+Every row gets a part code (0 train, 1 val, 2 test, -1 unused). A window, its
+inputs and its targets, lies wholly inside one run of rows that share a part
+and a sequence, so no window crosses a split or a sequence. All of this is
+vectorised: the work is O(rows), not O(rows x window).
+"""
+from __future__ import annotations
+
+from typing import Optional, Sequence, Tuple
+
+import numpy as np
+
+from ._errors import DataError
+
+UNUSED = -1
+PART_NAMES = ("train", "val", "test")
+
+
+def counts_by_fraction(n: int, split: Sequence[float], minimum: int = 0) -> Tuple[int, int, int]:
+    """Sizes of the three parts of ``n`` items: rounded cumulative fractions.
+
+    A part with a fraction > 0 gets at least ``minimum`` items when it can.
+    """
+    a = int(round(n * split[0]))
+    b = int(round(n * (split[0] + split[1]))) if split[2] > 0 else n
+    sizes = [a, b - a, n - b]
+    if minimum:
+        for p in (2, 1, 0):  # borrow from the largest part for a part that came out too small
+            while split[p] > 0 and sizes[p] < minimum:
+                donor = int(np.argmax(sizes))
+                if sizes[donor] <= minimum:
+                    break
+                sizes[donor] -= 1
+                sizes[p] += 1
+    return sizes[0], sizes[1], sizes[2]
+
+
+def chronological_parts(n: int, split: Sequence[float]) -> np.ndarray:
+    """(n,) int8 part codes: the first rows train, then val, then test."""
+    a, b, _ = counts_by_fraction(n, split)
+    part = np.full(n, 2, dtype=np.int8)
+    part[:a] = 0
+    part[a:a + b] = 1
+    return part
+
+
+def group_parts(n_groups: int, split: Sequence[float], order: np.ndarray,
+                needed: int) -> np.ndarray:
+    """(G,) int8 part per group: groups taken in ``order`` fill train, then val, then test.
+
+    Args:
+        order: (G,) int64, a permutation of the groups (by first time, or shuffled).
+        needed: how many parts must get a group (2, or 3 when test > 0).
+    """
+    if n_groups < needed:
+        raise DataError(
+            f"`group_column` gives {n_groups} sequence(s), but the split {list(split)} needs at least "
+            f"{needed} (one whole sequence per part); add sequences, set `split` with test 0, "
+            "or give `split_column`")
+    sizes = counts_by_fraction(n_groups, split, minimum=1)
+    part = np.empty(n_groups, dtype=np.int8)
+    part[order] = np.repeat(np.arange(3, dtype=np.int8), sizes)
+    return part
+
+
+def run_bounds(part: np.ndarray, boundary: Optional[np.ndarray]) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Maximal runs of rows with the same part inside one sequence.
+
+    Args:
+        part: (R,) int8 part codes.
+        boundary: (R,) bool, True where a new sequence starts, or None.
+    Returns:
+        lo, hi: (K,) int64 run [lo, hi); run_part: (K,) int8 (UNUSED runs included).
+    """
+    r = len(part)
+    change = np.empty(r, dtype=bool)
+    change[0] = True
+    np.not_equal(part[1:], part[:-1], out=change[1:])
+    if boundary is not None:
+        change |= boundary
+    lo = np.flatnonzero(change).astype(np.int64)
+    hi = np.append(lo[1:], r).astype(np.int64)
+    return lo, hi, part[lo]
+
+
+def drop_gap(part: np.ndarray, boundary: Optional[np.ndarray], gap: int) -> Tuple[np.ndarray, dict]:
+    """Mark the first ``gap`` rows of every val and test run unused; count them per part."""
+    dropped = {}
+    if gap <= 0:
+        return part, dropped
+    part = part.copy()
+    lo, hi, rp = run_bounds(part, boundary)
+    for p in (1, 2):
+        sel = rp == p
+        n = np.minimum(hi[sel] - lo[sel], gap)
+        if n.sum():
+            rows = _ranges(lo[sel], n)
+            part[rows] = UNUSED
+            dropped[p] = int(n.sum())
+    return part, dropped
+
+
+def window_starts(part: np.ndarray, boundary: Optional[np.ndarray], span: int) -> dict:
+    """First row of every window of ``span`` rows lying inside one run; split name -> (N,) int64."""
+    lo, hi, rp = run_bounds(part, boundary)
+    out = {}
+    for p, name in enumerate(PART_NAMES):
+        sel = rp == p
+        n = np.maximum(hi[sel] - lo[sel] - span + 1, 0)
+        out[name] = _ranges(lo[sel], n)
+    return out
+
+
+def _ranges(lo: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Concatenate ``arange(lo[k], lo[k] + n[k])`` over k without a Python loop."""
+    total = int(n.sum())
+    if total == 0:
+        return np.zeros(0, dtype=np.int64)
+    offsets = np.cumsum(n) - n  # (K,) where each run begins in the output
+    return (np.repeat(lo - offsets, n) + np.arange(total, dtype=np.int64)).astype(np.int64)
+
+
+def min_rows(span: int, split: Sequence[float], gap: int) -> int:
+    """Fewest rows for which every part with a fraction > 0 holds one window of ``span`` rows."""
+    need = [span, span + gap, span + gap if split[2] > 0 else 0]
+    n = max(int(np.ceil(need[p] / split[p])) if split[p] > 0 else 0 for p in range(3))
+    n = max(n - 3, 1)
+    while True:
+        sizes = counts_by_fraction(n, split)
+        if all(sizes[p] >= need[p] for p in range(3) if split[p] > 0):
+            return n
+        n += 1
+
+
+def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span):
+    """Part code of every row: chronological rows, whole sequences, or the split column.
+
+    Args:
+        n: rows R. gcode: (R,) int64 sequence code or None. boundary: (R,) bool or None.
+        ticks: (R,) time or None. split_codes: (R,) int8 from the split column or None.
+        span: rows one window needs (window + horizon; 1 for window="full").
+    Returns:
+        part (R,) int8, notes (tuple of sentences), gap rows dropped per part {1: k, 2: k}.
+    """
+    f, notes = config.split, ()
+    if gcode is None:
+        if split_codes is None:
+            sizes = counts_by_fraction(n, f)
+            need = (span, span + config.gap, span + config.gap)
+            if any(f[p] > 0 and sizes[p] < need[p] for p in range(3)):
+                raise DataError(
+                    f"too few rows: {n} rows split {list(f)} give {list(sizes)} rows to train/val/test, but each "
+                    f"part needs window + horizon = {span} rows (val and test also `gap` = {config.gap}); "
+                    f"the minimum is {min_rows(span, f, config.gap)} rows: add rows or lower "
+                    "`window`/`horizon`/`gap`")
+            part = chronological_parts(n, f)
+        else:
+            part = split_codes.copy()
+            if not (part == 1).any():
+                tr = np.flatnonzero(part == 0)
+                k = int(round(len(tr) * f[1] / (f[0] + f[1])))
+                if k:
+                    part[tr[len(tr) - k:]] = 1
+                notes += (f"no 'val' rows in {config.split_column!r}: the last {k} training rows became val "
+                          f"(val fraction {f[1]:g} of train + val)",)
+        part, gap_rows = drop_gap(part, None, config.gap)
+        return part, notes, gap_rows
+
+    first = np.flatnonzero(boundary).astype(np.int64)  # (G,) first row of each sequence
+    size = np.diff(np.append(first, n))  # (G,)
+    if split_codes is None:
+        if ticks is not None:
+            order, how = np.argsort(ticks[first], kind="stable"), "by their first time"
+        else:
+            order = np.random.default_rng(config.seed).permutation(len(first))
+            how = f"in a shuffled order (seed {config.seed}; the frame has no time)"
+        gp = group_parts(len(first), f, order, 3 if f[2] > 0 else 2)
+        notes += (f"sequences go whole to train/val/test {how}",)
+    else:
+        mixed = np.zeros(n, dtype=bool)
+        mixed[1:] = (split_codes[1:] != split_codes[:-1]) & ~boundary[1:]
+        if mixed.any():
+            i = int(np.argmax(mixed))
+            raise DataError(f"sequence {gids[gcode[i]]!r} has rows labelled {PART_NAMES[split_codes[i - 1]]!r} "
+                            f"and {PART_NAMES[split_codes[i]]!r} in {config.split_column!r}; a sequence belongs "
+                            "to one part: label all of its rows alike")
+        gp = split_codes[first].copy()
+        if not (gp == 1).any():
+            tr = np.flatnonzero(gp == 0)
+            if ticks is not None:
+                tr = tr[np.argsort(ticks[first[tr]], kind="stable")]
+            k = max(1, int(round(len(tr) * f[1] / (f[0] + f[1]))))
+            if len(tr) - k < 1:
+                raise DataError(f"{config.split_column!r} has no 'val' sequences and only {len(tr)} 'train' "
+                                "sequence(s) to take them from; label some sequences 'val'")
+            gp[tr[len(tr) - k:]] = 1
+            notes += (f"no 'val' sequences in {config.split_column!r}: the last {k} training sequences "
+                      f"became val (val fraction {f[1]:g} of train + val)",)
+    if config.gap:
+        notes += ("`gap` is not applied between whole sequences (they share no rows)",)
+    return np.repeat(gp.astype(np.int8), size), notes, {}
+
+
+def check_windows(starts: dict, config, n: int, span: int, split_codes) -> None:
+    """Train and val need a window; test too when it is asked for."""
+    wanted = ["train", "val"]
+    if (split_codes is None and config.split[2] > 0) or (split_codes is not None and (split_codes == 2).any()):
+        wanted.append("test")
+    for name in wanted:
+        if len(starts[name]) == 0:
+            raise DataError(f"the {name} part has no complete window: a window needs window + horizon = {span} "
+                            f"consecutive rows of one part and one sequence (val and test lose `gap` = "
+                            f"{config.gap} rows first); lower `window`/`horizon`/`gap` or give {name} more rows")
+
+
+def target_mask(starts: np.ndarray, lengths: Optional[np.ndarray], off: Tuple[int, int], n: int) -> np.ndarray:
+    """(n,) bool: rows that are the target of some window.
+
+    Args:
+        starts: (N,) first rows. lengths: (N,) for whole sequences (target = last row), else None.
+        off: first and last target row relative to a window's start (inclusive).
+    """
+    mask = np.zeros(n, dtype=bool)
+    if lengths is not None:
+        mask[starts + lengths - 1] = True
+        return mask
+    edges = np.bincount(starts + off[0], minlength=n + 1) - np.bincount(starts + off[1] + 1, minlength=n + 2)[:n + 1]
+    return np.cumsum(edges)[:n] > 0
