@@ -11,3 +11,5 @@ from . import reference as reference
 from . import datasets as datasets
 
 __version__ = "0.1.0"
+from ._data import prepare as prepare
+from ._windows import Prepared as Prepared
