@@ -1,0 +1,115 @@
+"""The command line: every command runs end to end; bad input exits 2 with one line."""
+import json
+import subprocess
+import sys
+
+import pytest
+
+import rnnkit
+from rnnkit.__main__ import main, read_data
+
+
+def _run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "rnnkit", *args], capture_output=True,
+                          text=True, cwd=cwd, timeout=600)
+
+
+@pytest.fixture(scope="module")
+def data_csv(tmp_path_factory):
+    d = tmp_path_factory.mktemp("cli")
+    df = rnnkit.datasets.cold_storage_load(years=40 / 365)
+    path = d / "load.csv"
+    df.to_csv(path)  # the time index is written as the first column
+    cfg = rnnkit.Config(target="load_kw", window=12, hidden=6, epochs=2, missing="interpolate")
+    rnnkit.save_config(cfg, d / "config.json")
+    return d, path, df
+
+
+def test_help_on_every_command():
+    for cmd in ([], ["demo"], ["fit"], ["sweep"], ["check-gradients"]):
+        r = _run(*cmd, "--help")
+        assert r.returncode == 0, r.stderr
+        assert "usage: rnnkit" in r.stdout
+
+
+def test_read_data_restores_time_index(data_csv):
+    d, path, df = data_csv
+    back = read_data(str(path))
+    assert str(back.index.dtype).startswith("datetime64")
+    assert list(back.columns) == list(df.columns)
+    assert len(back) == len(df)
+
+
+def test_fit_writes_model_and_report(data_csv, tmp_path, capsys):
+    d, path, df = data_csv
+    rc = main(["fit", str(d / "config.json"), "--data", str(path), "--out", str(tmp_path),
+               "--no-progress"])
+    assert rc == 0
+    out = capsys.readouterr().out
+    assert "persistence" in out and "status:" in out
+    loaded = rnnkit.load_fit(tmp_path / "model")
+    assert loaded.config.window == 12
+    html = (tmp_path / "report.html").read_text()
+    assert html.count("data:image/png;base64,") >= 4
+
+
+def test_sweep_resumes_from_store(data_csv, tmp_path, capsys):
+    d, path, df = data_csv
+    space = {"config": json.loads((d / "config.json").read_text())["config"],
+             "space": {"window": [8, 12]}, "seeds": 1}
+    (tmp_path / "space.json").write_text(json.dumps(space))
+    args = ["sweep", str(tmp_path / "space.json"), "--data", str(path), "--store",
+            str(tmp_path / "runs.db"), "--out", str(tmp_path / "o"), "--no-progress"]
+    assert main(args) == 0
+    first = (tmp_path / "o" / "results.csv").read_text()
+    assert main(args) == 0  # second run finds both runs in the store
+    assert (tmp_path / "o" / "results.csv").read_text().count("\n") == first.count("\n")
+    best = rnnkit.load_config(tmp_path / "o" / "best-config.json")
+    assert best.window in (8, 12)
+
+
+def test_check_gradients_agree(data_csv, capsys):
+    d, path, df = data_csv
+    rc = main(["check-gradients", str(d / "config.json"), "--data", str(path), "--windows", "2"])
+    assert rc == 0, capsys.readouterr().err
+    assert "gradients agree" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("args, words", [
+    (["fit", "missing.json", "--data", "x.csv"], "missing.json"),
+    (["sweep", "nope.json", "--data", "x.csv"], "nope.json"),
+])
+def test_missing_files_exit_2(args, words, tmp_path):
+    r = _run(*args, cwd=tmp_path)
+    assert r.returncode == 2
+    assert words in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_bad_data_exits_2_with_one_line(data_csv, tmp_path):
+    d, path, df = data_csv
+    bad = tmp_path / "bad.csv"
+    df.drop(columns=["load_kw"]).to_csv(bad)
+    r = _run("fit", str(d / "config.json"), "--data", str(bad), "--out", str(tmp_path / "o"),
+             "--no-progress")
+    assert r.returncode == 2
+    assert "load_kw" in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_unknown_space_key_is_refused(data_csv, tmp_path):
+    d, path, df = data_csv
+    (tmp_path / "s.json").write_text(json.dumps({"space": {"window": [8]}, "sedes": 2}))
+    r = _run("sweep", str(tmp_path / "s.json"), "--data", str(path))
+    assert r.returncode == 2 and "sedes" in r.stderr
+
+
+def test_demo_quick_writes_everything(tmp_path):
+    r = _run("demo", "--quick", "--out", str(tmp_path / "demo"), "--no-progress")
+    assert r.returncode == 0, r.stderr[-2000:]
+    out = tmp_path / "demo"
+    for name in ("results.csv", "best-config.json", "report.html"):
+        assert (out / name).is_file(), name
+    cfg = rnnkit.load_config(out / "best-config.json")
+    assert cfg.target == "load_kw"
+    assert "val_rmse" in r.stdout
