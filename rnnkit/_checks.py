@@ -20,6 +20,11 @@ _NS = {"minute": 60 * 10**9, "hour": 3600 * 10**9, "day": 86400 * 10**9}
 SEASON_BY_STEP = {_NS["minute"]: 60, _NS["hour"]: 24, _NS["day"]: 7, 7 * _NS["day"]: 52}
 
 
+def fmt_time(v) -> str:
+    """A time for a message: '2024-01-01 08:00:00' rather than numpy's long form."""
+    return str(pd.Timestamp(v)) if isinstance(v, np.datetime64) else str(v)
+
+
 def check_frame(df) -> None:
     """The frame itself: a DataFrame, string column names, not empty."""
     if not isinstance(df, pd.DataFrame):
@@ -164,13 +169,13 @@ def check_order(ticks, labels, boundary, row_label, group_of, name) -> None:
     if back.any():
         i = int(np.argmax(back)) + 1
         fix = "df.sort_index()" if name == "index" else f"df.sort_values({name!r})"
-        raise DataError(f"time {name!r} is not sorted: row {row_label(i)!r} ({labels[i]}) comes after "
-                        f"{labels[i - 1]}{_in_group(group_of, i)}; sort the frame first, e.g. {fix}")
+        raise DataError(f"time {name!r} is not sorted: row {row_label(i)!r} ({fmt_time(labels[i])}) comes after "
+                        f"{fmt_time(labels[i - 1])}{_in_group(group_of, i)}; sort the frame first, e.g. {fix}")
     same = (d == 0) & inside
     if same.any():
         i = int(np.argmax(same)) + 1
         raise DataError(f"time {name!r} has {int(same.sum())} duplicated timestamp(s); the first is "
-                        f"{labels[i]} at row {row_label(i)!r}{_in_group(group_of, i)}; keep one row per time "
+                        f"{fmt_time(labels[i])} at row {row_label(i)!r}{_in_group(group_of, i)}; keep one row per time "
                         "(df.drop_duplicates) or aggregate them (groupby(...).mean())")
 
 
@@ -208,7 +213,7 @@ def resolve_season(season, labels, ticks, boundary, row_label) -> Tuple[Optional
     if boundary is not None:
         bad &= ~boundary[1:]
     i = int(np.argmax(bad)) + 1
-    raise DataError(f"the time step is irregular: at {labels[i]} (row {row_label(i)!r}) the step is "
+    raise DataError(f"the time step is irregular: at {fmt_time(labels[i])} (row {row_label(i)!r}) the step is "
                     f"{pd.Timedelta(int(full_d[i - 1]), 'ns')}, while most steps are {pd.Timedelta(int(usual), 'ns')}; "
                     "`season`='auto' cannot read a season from an irregular step: set `season` to a whole "
                     "number of steps or None (and resample to a regular grid if the steps should be equal)")

@@ -14,7 +14,7 @@ from typing import List, Optional
 import numpy as np
 import pandas as pd
 
-from ._checks import (check_finite, check_frame, check_order, fill_missing, numeric_values,
+from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_time, numeric_values,
                       read_times, require_column, resolve_columns, resolve_season)
 from ._config import Config
 from ._errors import DataError
@@ -72,7 +72,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     labels, ticks = read_times(df, config.time_column, take)
     check_order(ticks, labels, boundary, row_label, group_of, config.time_column or "index")
     season, season_how = resolve_season(config.season, labels, ticks, boundary, row_label)
-    time_label = (lambda i: f" (time {labels[i]})") if labels is not None else (lambda i: "")
+    time_label = (lambda i: f" (time {fmt_time(labels[i])})") if labels is not None else (lambda i: "")
 
     # 3. values; missing values refused or filled on copies
     seq_starts = np.zeros(1, np.int64) if boundary is None else np.flatnonzero(boundary).astype(np.int64)
@@ -159,7 +159,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     if gcode is not None:
         counts["sequences"] = int(len(np.unique(gcode)))
     if config.season == "auto":
-        notes += (f"season {season} read from the time ({season_how})",)
+        notes += (f"`season`='auto' resolved to {season} ({season_how})",)
     resolved = config.replace(target=targets[0] if len(targets) == 1 else tuple(targets),
                               features=tuple(feats), season=season)
     for a in (inputs, targets_arr, index, rows):

@@ -144,7 +144,10 @@ def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span):
         part (R,) int8, notes (tuple of sentences), gap rows dropped per part {1: k, 2: k}.
     """
     f, notes = config.split, ()
-    if gcode is None:
+    single = gcode is not None and split_codes is None and span > 1 and not boundary[1:].any()
+    if single:  # one sequence is one series: split its rows in time, as without a group column
+        notes += ("one sequence only: its rows are split in time as a single series",)
+    if gcode is None or single:
         if split_codes is None:
             sizes = counts_by_fraction(n, f)
             need = (span, span + config.gap, span + config.gap)
