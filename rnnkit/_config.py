@@ -132,14 +132,15 @@ def _check(c: Config) -> None:
 
     if c.target is not None:
         names = c.targets
-        if not names or not all(isinstance(t, str) and t for t in names):
+        if (not isinstance(c.target, (str, tuple)) or not names
+                or not all(isinstance(t, str) and t for t in names)):
             raise TypeError(f"`target` (={c.target!r}) must be a column name or a list of names")
         if len(set(names)) != len(names):
             raise ValueError(f"`target` (={list(names)!r}) names a column twice")
         if c.task == "classification" and len(names) != 1:
             raise ValueError(f"`target` (={list(names)!r}): classification takes exactly one label column")
     if c.features is not None:
-        if not all(isinstance(t, str) and t for t in c.features):
+        if not isinstance(c.features, tuple) or not all(isinstance(t, str) and t for t in c.features):
             raise TypeError(f"`features` (={c.features!r}) must be a list of column names")
         if len(set(c.features)) != len(c.features):
             raise ValueError(f"`features` (={list(c.features)!r}) names a column twice")
@@ -190,7 +191,8 @@ def _check(c: Config) -> None:
         raise ValueError(f"`hidden` (={c.hidden!r}) must be a whole number from 1 to 4096")
     _positive_float(c, "recurrent_scale", c.recurrent_scale, upper=100.0)
     _positive_float(c, "lr", c.lr, upper=10.0)
-    if not isinstance(c.weight_decay, (int, float)) or not 0 <= c.weight_decay < 1:
+    if isinstance(c.weight_decay, bool) or not isinstance(c.weight_decay, (int, float)) \
+            or not 0 <= c.weight_decay < 1:
         raise ValueError(f"`weight_decay` (={c.weight_decay!r}) must be in [0, 1)")
     if not _is_int(c.epochs) or not 1 <= c.epochs <= 100_000:
         raise ValueError(f"`epochs` (={c.epochs!r}) must be a whole number from 1 to 100000")
