@@ -9,6 +9,7 @@ from ._model import predict_classes as predict_classes
 from ._gradcheck import check_gradients as check_gradients
 from . import reference as reference
 from . import datasets as datasets
+from . import plots as plots
 
 __version__ = "0.1.0"
 from ._data import prepare as prepare
