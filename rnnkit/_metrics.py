@@ -127,7 +127,7 @@ def mase_scale(train_series, season: Optional[int] = None, groups=None):
     if y.ndim not in (1, 2):
         raise ValueError(f"`train_series` must be (R,) or (R, O); got shape {y.shape}")
     _finite(y, "train_series")
-    seg = _segments(groups, len(y))
+    seg = sequence_ids(groups, len(y))
     ok = seg[m:] == seg[:-m] if len(y) > m else np.zeros(0, dtype=bool)  # (R - m,)
     if not ok.any():
         raise ValueError(
@@ -139,7 +139,7 @@ def mase_scale(train_series, season: Optional[int] = None, groups=None):
     return float(q) if y.ndim == 1 else q
 
 
-def _segments(groups, n: int) -> np.ndarray:
+def sequence_ids(groups, n: int) -> np.ndarray:
     """(n,) int: a new number wherever the group id changes."""
     if groups is None:
         return np.zeros(n, dtype=np.int64)

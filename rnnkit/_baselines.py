@@ -1,0 +1,188 @@
+"""Baselines on a Prepared: fitted on the training part, scored on the network's targets.
+
+``baseline_predictions(prepared, split)`` returns, per baseline name, the
+predictions for exactly the targets of that split (``Prepared.target_rows``):
+
+- regression, in ORIGINAL units, shaped like the targets ((N, O) or (N, T, O)):
+  ``persistence``, ``seasonal_naive`` (only when the season is known) and
+  ``linear_ar``;
+- classification, as probabilities ((N, C) or (N, T, C)): ``majority`` and
+  ``last_label``, or for whole sequences (window="full") ``majority`` and
+  ``nearest_neighbour``. (With whole sequences the label belongs to the
+  sequence, so a "last label" would read the answer.)
+
+Choices, in one place:
+- A naive forecast whose source row lies before its sequence's start (only
+  many-to-many steps can reach it) uses the training mean of the target;
+  seasonal naive first falls back to persistence. last_label falls back to
+  the training class frequencies.
+- linear_ar (many-to-many) predicts step t from the window's inputs at steps
+  0..t, like the network, with one ridge model per step.
+- With window="full", linear_ar sees each sequence right-aligned (zeros in
+  front), so its last input step is always the step before the target;
+  nearest_neighbour compares sequences zero-padded at the end to the longest.
+"""
+from __future__ import annotations
+
+from typing import NamedTuple, Optional
+
+import numpy as np
+import pandas as pd
+
+from . import _baseline_core as core
+from ._metrics import classification_metrics, mase_scale, regression_metrics
+
+SPLITS = ("train", "val", "test")
+
+
+class _Gather:
+    """Windows gathered from rows by index, a block at a time: ``g[idx] -> (len(idx), T, C)``.
+
+    ``right`` aligns each sequence of ``lengths`` to the end of T steps,
+    zero-filling in front; ``offset`` shifts the rows read (targets: horizon).
+    """
+
+    def __init__(self, values, starts, T, offset=0, lengths=None, right=False):
+        self.values, self.starts, self.T = values, np.asarray(starts, np.int64), int(T)
+        self.offset, self.lengths, self.right = int(offset), lengths, right
+        self.shape = (len(self.starts), self.T) + tuple(values.shape[1:])
+
+    def __getitem__(self, idx):
+        idx = np.asarray(idx, dtype=np.int64)
+        steps = np.arange(self.T, dtype=np.int64)
+        first = self.starts[idx] + self.offset  # (n,)
+        if not self.right:
+            return self.values[first[:, None] + steps[None, :]]  # (n, T, C)
+        shift = self.T - self.lengths[idx]  # (n,) zero steps in front
+        rows = first[:, None] + steps[None, :] - shift[:, None]  # (n, T)
+        valid = steps[None, :] >= shift[:, None]
+        out = self.values[np.where(valid, rows, 0)]
+        out[~valid] = 0
+        return out
+
+
+class Fitted(NamedTuple):
+    """What the baselines learned from the training part (scaled units)."""
+
+    mean: Optional[np.ndarray]  # (O,) training target mean (regression) or None
+    freq: Optional[np.ndarray]  # (C,) training class frequencies (classification) or None
+    linear: Optional[core.LinearAR]  # regression only
+    segments: np.ndarray  # (R,) sequence number of every row
+
+
+def training_rows(prepared) -> np.ndarray:
+    """(K,) sorted row numbers of the training part: every row a training window covers."""
+    s = prepared.starts["train"]
+    if prepared.full:
+        end = s + prepared.lengths["train"]
+    else:
+        end = s + prepared.window + prepared.horizon  # inputs and every target
+    cover = np.zeros(len(prepared.targets) + 1, dtype=np.int64)
+    np.add.at(cover, s, 1)
+    np.add.at(cover, end, -1)
+    return np.flatnonzero(np.cumsum(cover[:-1]) > 0)
+
+
+def prepared_mase_scale(prepared) -> np.ndarray:
+    """(O,) MASE scale in original units: seasonal-naive in-sample MAE of the training part.
+
+    Differences are taken only between consecutive rows of one sequence
+    (Hyndman & Koehler 2006; m = the resolved season or 1).
+    """
+    if prepared.classes is not None:
+        raise ValueError("MASE is a regression measure; this Prepared is for classification")
+    rows = training_rows(prepared)
+    seg = core.segments(prepared.groups, len(prepared.targets))[rows]
+    run = np.concatenate([[0], np.cumsum((np.diff(rows) != 1) | (np.diff(seg) != 0))])
+    y = prepared.scaler.inverse_targets(prepared.targets[rows])  # (K, O)
+    return np.atleast_1d(mase_scale(y, prepared.season, groups=run))
+
+
+def _inputs(prepared, split) -> _Gather:
+    p = prepared
+    return _Gather(p.inputs, p.starts[split], p.window, 0, p.lengths[split], right=p.full)
+
+
+def _linear_targets(prepared):
+    p = prepared
+    s = p.starts["train"]
+    if p.full or p.config.mode == "many-to-one":
+        return p.targets[p.target_rows("train")]  # (N, O)
+    return _Gather(p.targets, s, p.window, offset=p.horizon)  # (N, T, O)
+
+
+def fit_baselines(prepared, *, lam: float = core.RIDGE) -> Fitted:
+    """Fit every baseline of this task on the training part of `prepared`."""
+    p = prepared
+    seg = core.segments(p.groups, len(p.targets))
+    if p.classes is None:
+        mean = p.targets[training_rows(p)].mean(axis=0, dtype=np.float64)  # (O,)
+        linear = core.fit_linear_ar(_inputs(p, "train"), _linear_targets(p), lam=lam)
+        return Fitted(mean, None, linear, seg)
+    freq = core.class_frequencies(p.targets[p.target_rows("train")], len(p.classes))
+    return Fitted(None, freq, None, seg)
+
+
+def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) -> dict:
+    """Predictions of every baseline for the targets of one split.
+
+    Args:
+        prepared: a Prepared.
+        split: "train", "val" or "test".
+        fitted: from `fit_baselines(prepared)`; fitted here when None (pass it
+            to score several splits without refitting).
+    Returns:
+        dict name -> array: regression (N, O) or (N, T, O) in original units;
+        classification (N, C) or (N, T, C) probabilities.
+    """
+    if split not in SPLITS:
+        raise ValueError(f"`split` (={split!r}) must be one of {SPLITS}")
+    p = prepared
+    f = fit_baselines(p) if fitted is None else fitted
+    rows = p.target_rows(split)  # (N,) or (N, T)
+    h = p.horizon
+    if p.classes is None:
+        inv = p.scaler.inverse_targets
+        out = {"persistence": inv(core.persistence(p.targets, rows, h, f.segments, f.mean))}
+        if p.season is not None:
+            out["seasonal_naive"] = inv(core.seasonal_naive(p.targets, rows, h, p.season,
+                                                            f.segments, f.mean))
+        out["linear_ar"] = inv(core.predict_linear_ar(f.linear, _inputs(p, split)))
+        return out
+    n_classes = len(p.classes)
+    out = {"majority": np.broadcast_to(f.freq, rows.shape + (n_classes,)).copy()}
+    if p.full:
+        x_train, y_train, _ = p.windows("train")  # zero-padded at the end
+        x, _, _ = p.windows(split)
+        out["nearest_neighbour"] = core.nearest_neighbour(x_train, y_train, x, n_classes)
+    else:
+        out["last_label"] = core.last_label(p.targets, rows, h, n_classes, f.segments, f.freq)
+    return out
+
+
+def truth(prepared, split: str) -> np.ndarray:
+    """The targets of one split: regression in original units, classification as codes."""
+    y = prepared.targets[prepared.target_rows(split)]
+    return y if prepared.classes is not None else prepared.scaler.inverse_targets(y)
+
+
+def score_baselines(prepared, splits=("val", "test"), fitted: Optional[Fitted] = None) -> pd.DataFrame:
+    """Metrics of every baseline: index model name, columns "<split>_<metric>".
+
+    Regression: mae, rmse, mase, r2 (MASE scaled by `prepared_mase_scale`);
+    classification: accuracy, balanced_accuracy, log_loss.
+    """
+    f = fit_baselines(prepared) if fitted is None else fitted
+    scale = prepared_mase_scale(prepared) if prepared.classes is None else None
+    table: dict = {}
+    for split in splits:
+        if len(prepared.starts[split]) == 0:
+            continue
+        y = truth(prepared, split)
+        for name, pred in baseline_predictions(prepared, split, f).items():
+            if scale is not None:
+                m = regression_metrics(y, pred, scale=scale, model=name, split=split)
+            else:
+                m = classification_metrics(y, pred, model=name, split=split)
+            table.setdefault(name, {}).update({f"{split}_{k}": v for k, v in m.items()})
+    return pd.DataFrame.from_dict(table, orient="index").rename_axis("model")
