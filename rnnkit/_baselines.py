@@ -86,8 +86,9 @@ def training_rows(prepared) -> np.ndarray:
 def prepared_mase_scale(prepared) -> np.ndarray:
     """(O,) MASE scale in original units: seasonal-naive in-sample MAE of the training part.
 
-    Differences are taken only between consecutive rows of one sequence
-    (Hyndman & Koehler 2006; m = the resolved season or 1).
+    Differences are taken only between rows of one sequence (Hyndman &
+    Koehler 2006; m = the resolved season or 1). When no training sequence
+    is longer than the season, the non-seasonal scale (m = 1) is used.
     """
     if prepared.classes is not None:
         raise ValueError("MASE is a regression measure; this Prepared is for classification")
@@ -95,7 +96,10 @@ def prepared_mase_scale(prepared) -> np.ndarray:
     seg = core.segments(prepared.groups, len(prepared.targets))[rows]
     run = np.concatenate([[0], np.cumsum((np.diff(rows) != 1) | (np.diff(seg) != 0))])
     y = prepared.scaler.inverse_targets(prepared.targets[rows])  # (K, O)
-    return np.atleast_1d(mase_scale(y, prepared.season, groups=run))
+    m = prepared.season or 1
+    if m > 1 and np.bincount(run).max() <= m:
+        m = 1
+    return np.atleast_1d(mase_scale(y, m, groups=run))
 
 
 def _inputs(prepared, split) -> _Gather:

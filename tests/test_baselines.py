@@ -319,3 +319,29 @@ def test_adapters_whole_sequences_on_basic_motions():
         out = B.baseline_predictions(p, split)
         assert set(out) == {"majority", "nearest_neighbour"}
         np.testing.assert_array_equal(p.decode(out["nearest_neighbour"].argmax(1)), direct[sel])
+
+
+def test_whole_sequence_regression_right_aligned_and_short_season():
+    rng = np.random.default_rng(1)
+    parts = []
+    for g in range(30):
+        n = int(rng.integers(8, 15))
+        parts.append(pd.DataFrame({"seq": g, "time": pd.date_range("2024", periods=n, freq="h"),
+                                   "a": rng.normal(size=n), "y": rng.normal(size=n)}))
+    df = pd.concat(parts, ignore_index=True)
+    p = prepare(df, Config(target="y", features=("a",), target_as_input=False, window="full",
+                           group_column="seq", time_column="time"))
+    assert p.season == 24 and p.window == 14
+    x_pad, _, mask = p.windows("train")  # zero-padded at the end
+    x_right = B._inputs(p, "train")[np.arange(len(x_pad))]  # zero-padded in front
+    for i, n in enumerate(p.lengths["train"]):
+        np.testing.assert_array_equal(x_right[i, p.window - n:], x_pad[i, :n])
+        assert np.all(x_right[i, :p.window - n] == 0)
+    out = B.baseline_predictions(p, "test")
+    assert out["linear_ar"].shape == out["persistence"].shape == (len(p.starts["test"]), 1)
+    # every sequence is shorter than the season: the MASE scale falls back to m = 1
+    # (Hyndman & Koehler 2006, non-seasonal scale), within each sequence
+    rows = B.training_rows(p)
+    orig = df["y"].to_numpy()[p.rows]
+    np.testing.assert_allclose(B.prepared_mase_scale(p), [mase_scale(orig[rows], 1, p.groups[rows])],
+                               **EXACT64)
