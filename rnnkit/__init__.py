@@ -14,3 +14,7 @@ from . import plots as plots
 __version__ = "0.1.0"
 from ._data import prepare as prepare
 from ._windows import Prepared as Prepared
+from ._export import load_config as load_config
+from ._export import save_config as save_config
+from ._export import check_fingerprint as check_fingerprint
+from ._export import FingerprintWarning as FingerprintWarning

@@ -98,8 +98,13 @@ def validate(doc: Any, *, part: str = "document", where: str = "document") -> No
 # ---------------------------------------------------------------- data fingerprint
 
 
-def used_columns(df: pd.DataFrame, config: Config) -> list:
-    """The columns a run reads: target(s), features, time, group and split columns (sorted)."""
+def used_columns(df: pd.DataFrame, config: Optional[Config]) -> list:
+    """The columns a run reads: target(s), features, time, group and split columns (sorted).
+
+    config None: every column of the frame.
+    """
+    if config is None:
+        return sorted(df.columns, key=str)
     special = [c for c in (config.time_column, config.group_column, config.split_column) if c]
     targets, feats = resolve_columns(df, config, special)
     return sorted(set(targets) | set(feats) | set(special))
@@ -126,7 +131,7 @@ def _encode(values) -> bytes:
     return b"str\n" + b"\x00".join(out) + b"\x00"
 
 
-def fingerprint(df: pd.DataFrame, config: Config) -> str:
+def fingerprint(df: pd.DataFrame, config: Optional[Config]) -> str:
     """sha256 of the index and the used columns of a frame.
 
     The exact bytes hashed, in order:
@@ -143,7 +148,7 @@ def fingerprint(df: pd.DataFrame, config: Config) -> str:
 
     Args:
         df: the frame.
-        config: decides which columns are used (``used_columns``).
+        config: decides which columns are used (``used_columns``); None: all of them.
     Returns:
         "sha256:" + 64 hex digits.
     """
@@ -175,7 +180,7 @@ def data_block(df: pd.DataFrame, config: Config) -> dict:
         raise TypeError(f"`df` must be a pandas DataFrame, got {type(df).__name__}")
     idx = pd.Index(df[config.time_column] if config.time_column else df.index)
     return {"fingerprint": fingerprint(df, config), "rows": int(len(df)),
-            "columns": used_columns(df, config),
+            "columns": [str(c) for c in used_columns(df, config)],
             "start": _label(idx[0]) if len(df) else None,
             "end": _label(idx[-1]) if len(df) else None}
 
