@@ -152,6 +152,14 @@ def _check(c: Config) -> None:
         v = getattr(c, name)
         if v is not None and not (isinstance(v, str) and v):
             raise TypeError(f"`{name}` (={v!r}) must be a column name or None")
+    roles = [(n, getattr(c, n)) for n in ("time_column", "group_column", "split_column")
+             if getattr(c, n) is not None]
+    for i, (name, col) in enumerate(roles):
+        other = [n for n, v in roles[:i] if v == col]
+        if other or col in c.targets or col in (c.features or ()):
+            clash = other[0] if other else ("target" if col in c.targets else "features")
+            raise ValueError(f"`{name}` (={col!r}) is also `{clash}`; a column has one role: "
+                             "time, sequence id, split label, target or feature")
     if not isinstance(c.target_as_input, bool):
         raise TypeError(f"`target_as_input` (={c.target_as_input!r}) must be true or false")
 
@@ -164,6 +172,10 @@ def _check(c: Config) -> None:
                              "(the column that names each sequence)")
     elif not _is_int(c.window) or c.window < 1:
         raise ValueError(f"`window` (={c.window!r}) must be a whole number >= 1 or 'full'")
+        if c.task == "regression" and c.target_as_input:
+            raise ValueError("`window`='full' predicts each sequence's last target value, which "
+                             "`target_as_input`=true would show the network; set "
+                             "`target_as_input`=false")
     if not _is_int(c.horizon) or c.horizon < 0:
         raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number >= 0")
     if c.task == "regression" and c.target_as_input and c.window == "full":
