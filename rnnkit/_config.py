@@ -172,10 +172,6 @@ def _check(c: Config) -> None:
                              "(the column that names each sequence)")
     elif not _is_int(c.window) or c.window < 1:
         raise ValueError(f"`window` (={c.window!r}) must be a whole number >= 1 or 'full'")
-        if c.task == "regression" and c.target_as_input:
-            raise ValueError("`window`='full' predicts each sequence's last target value, which "
-                             "`target_as_input`=true would show the network; set "
-                             "`target_as_input`=false")
     if not _is_int(c.horizon) or c.horizon < 0:
         raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number >= 0")
     if c.task == "regression" and c.target_as_input and c.window == "full":
