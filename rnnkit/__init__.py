@@ -18,3 +18,9 @@ from ._export import load_config as load_config
 from ._export import save_config as save_config
 from ._export import check_fingerprint as check_fingerprint
 from ._export import FingerprintWarning as FingerprintWarning
+from ._fit import fit as fit
+from ._fit import FitResult as FitResult
+from ._fit_io import load_fit as load_fit
+from ._diagnose import Diagnostics as Diagnostics
+from ._diagnose import loss_surface as loss_surface
+from ._diagnose import loss_slice as loss_slice
