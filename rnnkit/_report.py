@@ -20,6 +20,7 @@ th { background: #eef1f6; }
 figure { display: inline-block; margin: 0.5rem; vertical-align: top; }
 figcaption { font-size: 0.8rem; color: #555; max-width: 32rem; }
 img { max-width: 34rem; }
+.wide { overflow-x: auto; }
 .note { background: #fff8e6; border-left: 4px solid #e0a800; padding: 0.5rem 1rem; }
 """
 
@@ -48,7 +49,8 @@ def _png(fig) -> str:
 
 
 def _table(frame: pd.DataFrame, index: bool = True) -> str:
-    return frame.to_html(index=index, float_format=lambda v: f"{v:.4g}", border=0)
+    inner = frame.to_html(index=index, float_format=lambda v: f"{v:.4g}", border=0)
+    return f"<div class='wide'>{inner}</div>"
 
 
 def report_figures(result, sweep_result=None) -> dict:
