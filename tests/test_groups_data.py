@@ -258,3 +258,23 @@ def test_full_on_aeon_basic_motions():
     assert p.window == 100 and p.n_inputs == 6 and sorted(p.classes) == list(p.classes)
     assert sum(len(p.starts[s]) for s in SPLITS) == 40
     assert set(p.classes) == set(np.unique(y)) and len(p.classes) == 4
+
+
+@pytest.mark.parametrize("policy", ["ffill", "interpolate"])
+def test_missing_values_are_filled_inside_each_sequence_only(policy):
+    df = machines(4, 20)
+    first_m1 = df.index[df["machine"] == "m1"][0]
+    df.loc[[first_m1, first_m1 + 1], "temp"] = np.nan  # m1 starts with two holes
+    df.loc[first_m1 - 1, "temp"] = np.nan  # m0 ends with a hole
+    df.loc[first_m1 + 7, "vib"] = np.nan  # a hole inside m1
+    p = untouched(df, Config(target="temp", features=("vib",), group_column="machine", time_column="ts",
+                             window=3, missing=policy, dtype="float64"))
+    assert p.dropped["rows"].tolist() == [2]  # m1's leading holes: nothing of m1 before them
+    assert first_m1 not in p.rows and first_m1 + 1 not in p.rows
+    # pandas' own fill, per sequence (reference library); "interpolate" holds the last value at the end
+    if policy == "ffill":
+        ref = df.groupby("machine")[["temp", "vib"]].ffill()
+    else:
+        ref = df.groupby("machine")[["temp", "vib"]].transform(
+            lambda s: s.set_axis(df.loc[s.index, "ts"]).interpolate(method="time").to_numpy())
+    np.testing.assert_allclose(p.scaler.inverse_inputs(p.inputs), ref.to_numpy()[p.rows], **EXACT64)
