@@ -83,32 +83,37 @@ def training_curves(history: pd.DataFrame, *, status: Optional[str] = None, ax=N
 
 
 def _regression_columns(pred: pd.DataFrame):
-    """(actual column key, predicted column key, target names) of a prediction frame."""
+    """(actual column, predicted column, target names) of a prediction frame:
+    "actual"/"predicted" for one target, "<name>_actual"/"<name>_predicted" for
+    several (as ``FitResult.predict`` writes them)."""
     cols = list(pred.columns)
     if "actual" in cols and "predicted" in cols:
         return "actual", "predicted", []
-    if isinstance(pred.columns, pd.MultiIndex) and {"actual", "predicted"} <= set(pred.columns.levels[0]):
-        names = [t for t in pred["actual"].columns if t in pred["predicted"].columns]
-        if names:
-            return ("actual", names[0]), ("predicted", names[0]), names
-    names = [str(c)[len("actual_"):] for c in cols
-             if str(c).startswith("actual_") and "predicted_" + str(c)[len("actual_"):] in cols]
+    names = [str(c)[: -len("_actual")] for c in cols
+             if str(c).endswith("_actual") and str(c)[: -len("_actual")] + "_predicted" in cols]
     if names:
-        return "actual_" + names[0], "predicted_" + names[0], names
+        return names[0] + "_actual", names[0] + "_predicted", names
     raise ValueError(f"`pred` has columns {cols}; expected 'actual' and 'predicted' (one target), "
-                     "or 'actual_<name>' and 'predicted_<name>' per target")
+                     "or '<name>_actual' and '<name>_predicted' per target")
+
+
+def _runs(mask: np.ndarray):
+    """(first, last) row of every run of consecutive True in mask."""
+    edges = np.diff(np.concatenate([[0], mask.astype(np.int8), [0]]))
+    return zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1)
 
 
 def _shade_splits(ax, x, split) -> None:
-    """Light bands behind the validation and test parts, labelled at the top."""
+    """Light bands behind the validation and test rows (one per run of rows,
+    as sequences may be spread over the parts), the first of each labelled."""
     split = np.asarray(split, dtype=object)
-    for part, alpha in (("val", 0.07), ("test", 0.14)):
-        rows = np.flatnonzero(split == part)
-        if rows.size:
-            ax.axvspan(x[rows[0]], x[rows[-1]], color=base.MUTED, alpha=alpha, linewidth=0)
-            ax.annotate(part, (x[rows[0]], 1.0), xycoords=("data", "axes fraction"),
-                        xytext=(3, -10), textcoords="offset points", fontsize="small",
-                        color=base.MUTED)
+    for part, alpha in (("val", 0.08), ("test", 0.16)):
+        for n, (first, last) in enumerate(_runs(split == part)):
+            ax.axvspan(x[first], x[last], color=base.MUTED, alpha=alpha, linewidth=0)
+            if n == 0:
+                ax.annotate(part, (x[first], 1.0), xycoords=("data", "axes fraction"),
+                            xytext=(3, -10), textcoords="offset points", fontsize="small",
+                            color=base.MUTED)
 
 
 def forecast(pred: pd.DataFrame, *, baseline=None, baseline_name: Optional[str] = None,
@@ -117,11 +122,11 @@ def forecast(pred: pd.DataFrame, *, baseline=None, baseline_name: Optional[str] 
 
     Args:
         pred: DataFrame (N rows) indexed by time with numeric columns ``actual``
-            and ``predicted``. Several targets as ``actual_<name>`` /
-            ``predicted_<name>`` pairs (or a two-level column index under
-            "actual" / "predicted"): the first target is drawn and the title
+            and ``predicted``, or for several targets ``<name>_actual`` /
+            ``<name>_predicted`` pairs: the first target is drawn and the title
             says so. An optional ``split`` column ("train"/"val"/"test")
-            shades the held-out parts. Rows without a prediction may be NaN.
+            shades the held-out rows. Rows without a prediction may be NaN.
+            This is the frame ``FitResult.predict()`` returns.
         baseline: optional Series on the same index (or an array of N values),
             e.g. the persistence forecast.
         baseline_name: legend label of the baseline (default: its name or "baseline").

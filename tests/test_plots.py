@@ -195,8 +195,8 @@ def test_forecast_draws_actual_predicted_and_baseline():
 
 def test_forecast_of_several_targets_draws_the_first_and_says_so():
     pred = _pred()
-    multi = pd.DataFrame({"actual_load": pred["actual"], "predicted_load": pred["predicted"],
-                          "actual_temp": pred["actual"] / 10, "predicted_temp": pred["predicted"] / 10})
+    multi = pd.DataFrame({"load_actual": pred["actual"], "temp_actual": pred["actual"] / 10,
+                          "load_predicted": pred["predicted"], "temp_predicted": pred["predicted"] / 10})
     ax = _only_axes(plots.forecast(multi))
     assert "first of 2 targets" in ax.get_title(loc="left") and "load" in ax.get_title(loc="left")
     np.testing.assert_array_equal(ax.get_lines()[0].get_ydata(), pred["actual"])
@@ -204,9 +204,13 @@ def test_forecast_of_several_targets_draws_the_first_and_says_so():
 
 def test_forecast_shades_the_held_out_parts():
     pred = _pred()
-    pred["split"] = ["train"] * 40 + ["val"] * 10 + ["test"] * 10
+    pred["split"] = [None] * 5 + ["train"] * 35 + ["val"] * 10 + ["test"] * 10
     ax = _only_axes(plots.forecast(pred))
     assert len([p for p in ax.patches if isinstance(p, Rectangle)]) == 2
+    # Sequences spread over the parts: one band per run of rows.
+    pred["split"] = (["train"] * 10 + ["test"] * 10 + ["val"] * 10) * 2
+    ax = _only_axes(plots.forecast(pred))
+    assert len([p for p in ax.patches if isinstance(p, Rectangle)]) == 4
     assert {"val", "test"} <= {t.get_text() for t in ax.texts}
 
 
@@ -242,9 +246,15 @@ def test_class_forecast_stacks_probabilities_and_draws_strips():
 def test_class_forecast_leaves_unknown_labels_blank_and_refuses_bad_input():
     pred = _class_pred(10)
     pred.loc[3, "actual"] = np.nan
-    ax = _only_axes(plots.class_forecast(pred))
-    actual_strip = [c for c in ax.collections if isinstance(c, QuadMesh)][0].get_array()
-    assert np.ma.getmaskarray(actual_strip).ravel()[3]
+    # Rows before the first full window have no prediction (as FitResult.predict gives them).
+    pred.loc[:1, "predicted"] = None
+    pred.loc[:1, [c for c in pred.columns if c.startswith("p_")]] = np.nan
+    fig = plots.class_forecast(pred)
+    fig.savefig(io.BytesIO(), format="png", dpi=40)
+    actual_strip, predicted_strip = [c.get_array() for c in fig.axes[0].collections
+                                     if isinstance(c, QuadMesh)]
+    assert np.ma.getmaskarray(actual_strip).ravel().tolist() == [False] * 3 + [True] + [False] * 6
+    assert np.ma.getmaskarray(predicted_strip).ravel().tolist() == [True] * 2 + [False] * 8
     with pytest.raises(ValueError, match="p_<class>"):
         plots.class_forecast(pred[["actual", "predicted", "p_normal"]])
     bad = pred.copy()
