@@ -24,3 +24,4 @@ from ._fit_io import load_fit as load_fit
 from ._diagnose import Diagnostics as Diagnostics
 from ._diagnose import loss_surface as loss_surface
 from ._diagnose import loss_slice as loss_slice
+from ._panel import panel as panel

@@ -1,0 +1,227 @@
+"""The panel's figures and tables: results in, PNG images and HTML tables out.
+
+Every figure comes from ``rnnkit.plots``; this module only picks the data a
+figure is drawn from (a FitResult's history, predictions, diagnostics and loss
+surfaces; a SweepResult's table), renders it to PNG bytes for an
+``ipywidgets.Image`` and closes it. Images work the same in JupyterLab and in
+headless tests, and setting ``.value`` from the worker thread syncs.
+"""
+from __future__ import annotations
+
+import html
+import io
+from typing import Optional
+
+import ipywidgets as widgets
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from . import plots
+from ._panel_data import (baseline_series, forecast_frame, gradient_factor, gradient_norms,
+                          headline, loss_planes, score_column, sweep_headline, window_times)
+
+DPI = 100
+
+
+def render(fig: Figure) -> bytes:
+    """PNG bytes of `fig`; the figure is emptied afterwards so nothing holds on to it."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI, facecolor="white")
+    fig.clear()  # plots builds figures outside pyplot: dropping the last reference frees them
+    return buf.getvalue()
+
+
+def _image(name: str) -> widgets.Image:
+    img = widgets.Image(format="png", layout=widgets.Layout(width="100%", max_width="760px",
+                                                             height="auto"))
+    img.add_class("rnnkit-fig-" + name)
+    return img
+
+
+def _note(text: str) -> widgets.HTML:
+    return widgets.HTML(f"<div style='color:#777;margin:4px 0'>{html.escape(text)}</div>")
+
+
+def _table_html(df: pd.DataFrame, caption: str) -> str:
+    """A compact HTML table: numbers to 4 significant digits, the caption above."""
+    body = df.to_html(float_format=lambda v: f"{v:.4g}", na_rep="", border=0, escape=True,
+                      classes="rnnkit-table")
+    return (f"<div style='font-weight:600;margin:6px 0 4px'>{html.escape(caption)}</div>"
+            "<div style='overflow-x:auto;font-size:12px'>"
+            "<style>.rnnkit-table td,.rnnkit-table th{padding:2px 8px;text-align:right}"
+            ".rnnkit-table tr:nth-child(even){background:#f4f6f8}</style>" + body + "</div>")
+
+
+def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
+    a.layout.width = b.layout.width = "50%"
+    return widgets.HBox([a, b], layout=widgets.Layout(width="100%"))
+
+
+class FigureViews:
+    """The right-hand pages of the panel: one ipywidgets.Tab of figures and tables."""
+
+    PAGES = ("Training", "Forecast", "Gradients", "Hidden state", "Loss surface", "Sweep",
+             "Scores", "JSON")
+
+    def __init__(self):
+        names = ("training", "forecast", "gradient", "spectrum", "heatmap", "path", "surface",
+                 "slice", "sweep", "scores")
+        self.images = {n: _image(n) for n in names}
+        self.notes = {p: _note("Press Train to draw this page.") for p in self.PAGES}
+        self.notes["Sweep"].value = self.notes["Sweep"].value.replace("Train", "Sweep")
+        self.notes["JSON"].value = self.notes["JSON"].value.replace(
+            "Press Train to draw this page.", "Save or load a config to show its JSON here.")
+        self.window_slider = widgets.IntSlider(
+            description="window #", min=0, max=0, value=0, continuous_update=False,
+            style={"description_width": "70px"}, layout=widgets.Layout(width="420px"))
+        self.window_slider.add_class("rnnkit-window-slider")
+        self.sweep_x = widgets.Dropdown(description="across", options=(), layout=widgets.Layout(width="220px"))
+        self.sweep_y = widgets.Dropdown(description="down", options=(), layout=widgets.Layout(width="220px"))
+        self.sweep_table = widgets.HTML()
+        self.sweep_table.add_class("rnnkit-sweep-table")
+        self.metrics_table = widgets.HTML()
+        self.metrics_table.add_class("rnnkit-metrics-table")
+        self.diagnostics_table = widgets.HTML()
+        self.document = widgets.HTML()
+        self.document.add_class("rnnkit-document")
+        self.result = None
+        self.sweep_result = None
+        self._quiet = False  # True while the slider is being reset with a new result
+
+        i = self.images
+        pages = {
+            "Training": [i["training"]],
+            "Forecast": [i["forecast"]],
+            "Gradients": [_pair(i["gradient"], i["spectrum"]), self.diagnostics_table],
+            "Hidden state": [self.window_slider, _pair(i["heatmap"], i["path"])],
+            "Loss surface": [_pair(i["surface"], i["slice"])],
+            "Sweep": [widgets.HBox([self.sweep_x, self.sweep_y]), i["sweep"], self.sweep_table],
+            "Scores": [self.metrics_table, i["scores"]],
+            "JSON": [self.document],
+        }
+        self.tab = widgets.Tab(
+            children=[widgets.VBox([self.notes[p], *kids], layout=widgets.Layout(padding="6px"))
+                      for p, kids in pages.items()],
+            titles=self.PAGES, layout=widgets.Layout(flex="1 1 auto", min_width="560px"))
+        self.tab.add_class("rnnkit-pages")
+        self.widget = self.tab
+        self.window_slider.observe(self._on_window, names="value")
+        self.sweep_x.observe(self._on_axes, names="value")
+        self.sweep_y.observe(self._on_axes, names="value")
+
+    def select(self, page: str) -> None:
+        self.tab.selected_index = self.PAGES.index(page)
+
+    # --- a trained network ---
+    def show_fit(self, result) -> None:
+        """Draw every page of one FitResult (called in the worker thread)."""
+        self.result = result
+        cfg = result.config
+        im = self.images
+        im["training"].value = render(plots.training_curves(result.history, status=str(result.status)))
+        self.notes["Training"].value = ""
+
+        pred = forecast_frame(result)
+        if cfg.task == "classification":
+            im["forecast"].value = render(plots.class_forecast(pred))
+            self._note("Forecast", "Test range: class probabilities with the actual and predicted class.")
+        else:
+            base_name, base = baseline_series(result, pred.index)
+            im["forecast"].value = render(plots.forecast(pred, baseline=base, baseline_name=base_name))
+            self._note("Forecast", f"Test range, original units; dashed: the best baseline ({base_name}).")
+
+        d = result.diagnostics
+        sigma = float(d.singular_values[0])
+        factor = sigma * gradient_factor(cfg.activation)
+        im["gradient"].value = render(plots.gradient_flow(
+            gradient_norms(d), sigma_max=factor if factor > 0 else None))
+        im["spectrum"].value = render(plots.spectrum(d.singular_values))
+        self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
+        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows; dashed: "
+                                f"||dL/dh_T|| sigma_max^(T-k) with sigma_max(V) = {sigma:.3g}"
+                                + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+
+        n = int(d.val_states.shape[0])
+        self._quiet = True
+        self.window_slider.value = 0
+        self.window_slider.max = max(n - 1, 0)
+        self._quiet = False
+        self._draw_window(0)
+        im["path"].value = render(plots.hidden_path(d.val_states, times=d.val_times))
+        self._note("Hidden state", f"Left: one {d.split} window, units x steps (the slider picks "
+                                   f"one of {n}). Right: the last state of every {d.split} window "
+                                   "on its first two principal components.")
+
+        (a, b, surface), (s, values) = loss_planes(result)
+        im["surface"].value = render(plots.loss_surface(a, b, surface))
+        im["slice"].value = render(plots.loss_slice(s, values, label="V"))
+        self._note("Loss surface", "Left: validation loss on a random plane through the trained "
+                                   "weights, filter-normalised (Li et al. 2018). Right: along a "
+                                   "random direction in V only.")
+
+        metrics = result.metrics
+        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
+        column = score_column(metrics, cfg.task)
+        im["scores"].value = render(plots.metrics_bar(metrics, column=column,
+                                                      highlight=metrics.index[0]))
+        self._note("Scores", "")
+
+    def _note(self, page: str, text: str) -> None:
+        self.notes[page].value = (f"<div style='color:#555;margin:2px 0 6px'>{html.escape(text)}</div>"
+                                  if text else "")
+
+    def _draw_window(self, i: int) -> None:
+        r = self.result
+        states = r.diagnostics.window_states(int(i))  # (T, H)
+        times = window_times(r, int(i), len(states))
+        self.images["heatmap"].value = render(plots.hidden_heatmap(states, times=times))
+
+    def _on_window(self, change) -> None:
+        if self._quiet or self.result is None:
+            return
+        self._draw_window(change["new"])
+
+    # --- a sweep ---
+    def show_sweep(self, result) -> None:
+        """Draw the sweep page of one SweepResult (called in the worker thread)."""
+        self.sweep_result = result
+        axes = [f for f in result.varied] + ["seed"]
+        x = "window" if "window" in axes else axes[0]
+        y = "hidden" if "hidden" in axes and x != "hidden" else next(a for a in axes if a != x)
+        self._quiet = True
+        self.sweep_x.options = axes
+        self.sweep_y.options = axes
+        self.sweep_x.value, self.sweep_y.value = x, y
+        self._quiet = False
+        self._draw_sweep()
+        summary = result.summary()
+        self.sweep_table.value = _table_html(
+            summary.set_index("rank"), f"runs by setting, ranked by {result.metric} "
+                                       "(mean over seeds; seed_spread = max - min)")
+        self._note("Sweep", f"{len(result.table)} runs; {result.missing} not run." if result.missing
+                   else f"{len(result.table)} runs.")
+        self.select("Sweep")
+
+    def _draw_sweep(self) -> None:
+        r = self.sweep_result
+        x, y = self.sweep_x.value, self.sweep_y.value
+        if x == y:
+            self._note("Sweep", "Pick two different settings for the two axes.")
+            return
+        self.images["sweep"].value = render(plots.sweep_surface(r.table, x, y, metric=r.metric))
+
+    def _on_axes(self, change) -> None:
+        if not self._quiet and self.sweep_result is not None:
+            self._draw_sweep()
+
+    # --- the config file ---
+    def show_document(self, path: str, text: str) -> None:
+        self.document.value = (f"<div style='color:#555'>{html.escape(path)}</div>"
+                               "<pre style='font-size:12px;line-height:1.3;background:#f6f8fa;"
+                               f"padding:8px;max-height:520px;overflow:auto'>{html.escape(text)}</pre>")
+        self._note("JSON", "")
+        self.select("JSON")
+
+    headline = staticmethod(headline)
+    sweep_headline = staticmethod(sweep_headline)
