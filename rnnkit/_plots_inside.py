@@ -25,15 +25,17 @@ def gradient_flow(norms, *, sigma_max: Optional[float] = None, ax=None) -> Figur
 
     Args:
         norms: (T,) non-negative numbers, k = 1..T; the last entry is the last step.
+            NaN (a step no window reaches) and 0 are left out of the log plot.
         sigma_max: optional positive number, the factor per step of the bound.
         ax: draw into this Axes instead of a new Figure.
 
     Returns:
         The Figure drawn on.
     """
-    norms = base.as_array(norms, "norms", 1, "(T,): one mean gradient norm per step")
-    if (norms < 0).any():
-        raise ValueError(f"`norms` has negative values (min {norms.min():.3g}); norms are >= 0")
+    norms = base.as_array(norms, "norms", 1, "(T,): one mean gradient norm per step", finite=False)
+    if np.isinf(norms).any() or (norms < 0).any():
+        raise ValueError(f"`norms` has negative or infinite values (min {np.nanmin(norms):.3g}, "
+                         f"max {np.nanmax(norms):.3g}); norms are finite and >= 0 (NaN: step not reached)")
     if sigma_max is not None:
         sigma_max = base.positive_number(sigma_max, "sigma_max")
     T = len(norms)
@@ -43,7 +45,7 @@ def gradient_flow(norms, *, sigma_max: Optional[float] = None, ax=None) -> Figur
     fig, ax = base.figure_and_axes(ax)
     ax.plot(k, shown, color=base.INK, marker="o" if T <= 60 else None, markersize=3,
             label="mean ||dL/dh_k||")
-    if sigma_max is not None and norms[-1] > 0:
+    if sigma_max is not None and norms[-1] > 0:  # NaN compares False: no anchor, no bound
         # In logs, so that a long sequence does not overflow the float range.
         log_bound = np.log(norms[-1]) + (T - k) * np.log(sigma_max)  # (T,)
         with np.errstate(over="ignore"):
@@ -54,7 +56,7 @@ def gradient_flow(norms, *, sigma_max: Optional[float] = None, ax=None) -> Figur
         seen = norms[norms > 0]
         ax.set_ylim(max(min(seen.min(), bound.min()), seen.min() * 1e-6) / 2.0,
                     min(max(seen.max(), bound.max()), seen.max() * 1e6) * 2.0)
-    if (norms > 0).any():
+    if (norms > 0).any():  # else nothing could sit on a log axis
         base.log_scale(ax.yaxis)
     base.integer_ticks(ax.xaxis)
     base.tidy(ax)

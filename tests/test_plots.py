@@ -278,13 +278,19 @@ def test_gradient_flow_draws_norms_and_the_geometric_bound():
     # A long sequence with a large factor must not overflow.
     fig = plots.gradient_flow(np.geomspace(1e-6, 1, 2000), sigma_max=4.0)
     assert np.isfinite(fig.axes[0].get_ylim()).all()
+    # Steps no window reaches (NaN) and zeros are gaps; all-zero norms stay on a linear axis.
+    ax = _only_axes(plots.gradient_flow([np.nan, 0.0, 0.1, 0.2], sigma_max=0.9))
+    assert np.isnan(ax.get_lines()[0].get_ydata()[:2]).all()
+    ax = _only_axes(plots.gradient_flow(np.zeros(5), sigma_max=0.9))
+    assert ax.get_yscale() == "linear" and len(ax.get_lines()) == 1
+    ax.figure.savefig(io.BytesIO(), format="png", dpi=40)
 
 
 def test_gradient_flow_refuses_bad_input():
     with pytest.raises(ValueError, match=r"norms.*\(T,\)"):
         plots.gradient_flow(np.ones((3, 2)))
     with pytest.raises(ValueError, match="norms"):
-        plots.gradient_flow([1.0, np.nan])
+        plots.gradient_flow([1.0, np.inf])
     with pytest.raises(ValueError, match="norms"):
         plots.gradient_flow([1.0, -1.0])
     with pytest.raises(ValueError, match="sigma_max"):
