@@ -51,10 +51,13 @@ def require_column(df: pd.DataFrame, name: str, field: str) -> None:
                         f"the columns are {list(df.columns)}; set `{field}` to one of them")
 
 
-def _first_non_numeric(s: pd.Series):
-    bad = pd.to_numeric(s, errors="coerce").isna() & s.notna()
-    pos = int(np.argmax(bad.to_numpy())) if bad.any() else 0
-    return s.iloc[pos], s.index[pos]
+def _not_numeric(s: pd.Series) -> str:
+    """Say why a column is not numbers: its first non-number, or that it is numbers stored as text."""
+    bad = (pd.to_numeric(s, errors="coerce").isna() & s.notna()).to_numpy()
+    if bad.any():
+        pos = int(np.argmax(bad))
+        return f"dtype {s.dtype}; first non-number {s.iloc[pos]!r} at row {s.index[pos]!r}"
+    return f"dtype {s.dtype}: numbers stored as text, such as {s.iloc[0]!r}; pd.to_numeric converts them"
 
 
 def _is_number_column(s: pd.Series) -> bool:
@@ -90,9 +93,8 @@ def resolve_columns(df: pd.DataFrame, config, special: Sequence[str]) -> Tuple[L
         if t in special:
             raise DataError(f"`target` {t!r} is also the time/group/split column; choose another target")
         if config.task == "regression" and not _is_number_column(df[t]):
-            v, row = _first_non_numeric(df[t])
-            raise DataError(f"target column {t!r} is not numeric (dtype {df[t].dtype}; first non-number "
-                            f"{v!r} at row {row!r}); regression needs numbers: convert it with "
+            raise DataError(f"target column {t!r} is not numeric ({_not_numeric(df[t])}); regression "
+                            "needs numbers: convert it with "
                             "pd.to_numeric, or set `task`='classification'")
     if feats is None:
         feats = [c for c in df.columns if c not in special and c not in targets and _is_number_column(df[c])]
@@ -101,9 +103,8 @@ def resolve_columns(df: pd.DataFrame, config, special: Sequence[str]) -> Tuple[L
         if f in special:
             raise DataError(f"`features` names {f!r}, the time/group/split column; leave it out")
         if not _is_number_column(df[f]):
-            v, row = _first_non_numeric(df[f])
-            raise DataError(f"feature column {f!r} is not numeric (dtype {df[f].dtype}; first non-number "
-                            f"{v!r} at row {row!r}); convert it (pd.to_numeric, or one-hot with "
+            raise DataError(f"feature column {f!r} is not numeric ({_not_numeric(df[f])}); "
+                            "convert it (pd.to_numeric, or one-hot with "
                             "pd.get_dummies) or leave it out of `features`")
     return targets, feats
 
@@ -229,6 +230,9 @@ def check_finite(v: np.ndarray, name: str, policy: str, row_label, time_label) -
                         "`missing` policy) before prepare()")
     nan = np.isnan(v)
     n = int(nan.sum())
+    if n == len(v):
+        raise DataError(f"column {name!r} holds no value at all (all {n} rows are NaN); leave it out "
+                        "(`features`/`target`) or fill it")
     if n and policy == "error":
         i = int(np.argmax(nan))
         raise DataError(f"column {name!r} has {n} missing value(s) (NaN), first at row {row_label(i)!r}"

@@ -160,6 +160,14 @@ def test_season_auto_from_time_step(freq, season):
     assert prepare(df, Config(window=3)).season == season
 
 
+def test_timezone_aware_index_is_kept_as_utc():
+    df = hourly(100)
+    df.index = df.index.tz_localize("Europe/Berlin")
+    p = prepare(df, Config(target="load", window=3))
+    assert p.season == 24 and p.index.dtype == "datetime64[ns]"
+    np.testing.assert_array_equal(p.index, df.index.tz_convert("UTC").tz_localize(None).to_numpy())
+
+
 def test_season_without_time_is_none_and_explicit_season_is_kept():
     df = pd.DataFrame({"y": np.arange(60.0)})
     assert prepare(df, Config(window=3)).season is None
@@ -247,6 +255,15 @@ def test_non_numeric_target_for_regression():
 def test_non_numeric_feature():
     df = hourly(50).assign(site=["a"] * 50)
     frame_untouched(df, Config(target="load", features=("temp", "site")), "'site'.*'a'")
+
+
+def test_numbers_stored_as_text():
+    df = hourly(50).assign(load=lambda d: d["load"].round(2).astype(str))
+    frame_untouched(df, Config(target="load"), "'load'.*stored as text.*to_numeric")
+
+
+def test_column_without_any_value():
+    frame_untouched(hourly(50).assign(temp=np.nan), Config(target="load", missing="ffill"), "'temp'.*no value")
 
 
 def test_nan_under_error_policy_counts_and_locates():
