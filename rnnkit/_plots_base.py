@@ -27,7 +27,7 @@ ALERT = "#b8323a"
 GOOD = "#2f8f6b"
 GRID = "#e3e7ea"
 # Classes: distinct hues that stay apart in grey print.
-CLASS_COLOURS = ("#3b7dba", "#e0a526", "#b8323a", "#4d9b6a", "#8a5fb0",
+CLASS_COLOURS = ("#3b7dba", "#e0a526", "#4d9b6a", "#b8323a", "#8a5fb0",
                  "#c96f9c", "#6b7b3a", "#2fa6a6")
 DIVERGING = "RdBu_r"  # negative blue, positive red, white at 0
 SEQUENTIAL = "YlGnBu"

@@ -178,11 +178,13 @@ def hidden_path(states, *, times=None, ax=None) -> Figure:
         ax.set_xlabel(f"PC 1 ({ratio[0]:.1%} of variance)")
         ax.set_ylabel(f"PC 2 ({ratio[1]:.1%} of variance)")
     segments = np.stack([xy[:-1], xy[1:]], axis=1)  # (N-1, 2, 2)
-    lines = LineCollection(segments, cmap="Greys", linewidths=1.2, alpha=0.7)
+    crowded = N > 300  # thinner marks, or a long path is a solid blot
+    lines = LineCollection(segments, cmap="Greys", linewidths=0.5 if crowded else 1.2,
+                           alpha=0.35 if crowded else 0.7)
     lines.set_array(step[1:])
     lines.set_clim(-0.3 * N, N)  # keep the earliest segments visible, not white
     ax.add_collection(lines)
-    dots = ax.scatter(xy[:, 0], xy[:, 1], c=step, cmap="viridis", s=14, zorder=3)
+    dots = ax.scatter(xy[:, 0], xy[:, 1], c=step, cmap="viridis", s=5 if crowded else 14, zorder=3)
     fig.colorbar(dots, ax=ax, label="step", fraction=0.05, pad=0.02)
     for i, name in ((0, "start"), (N - 1, "end")):
         text = name + (f" {labels[i]}" if labels else "")
