@@ -187,7 +187,7 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
             x, y, mask = gather(series, train.starts[idx], train.lengths[idx], valid,
                                 steps=steps, mode=mode)
             value, grads = jax.value_and_grad(loss_fn)(params, x, y, mask)
-            norm = optax.global_norm(grads)  # before clipping
+            norm = optax.tree.norm(grads)  # before clipping
             updates, opt_state = opt.update(grads, opt_state, params)
             params = optax.apply_updates(params, updates)
             c = _terms(mask, valid, mode, dtype)

@@ -91,7 +91,3 @@ def init_state(optimizer: str, lr: float, clip, weight_decay: float, params: dic
     factory = make_optimizer(optimizer, clip is not None, dtype)
     return factory(**hyperparams(optimizer, lr, clip, weight_decay, dtype)).init(params)
 
-
-def current_lr(opt_state) -> float:
-    """The learning rate held in an injected optimizer state."""
-    return float(opt_state.hyperparams["learning_rate"])

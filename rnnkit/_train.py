@@ -29,7 +29,7 @@ from tqdm.auto import tqdm
 from . import _epoch
 from ._cells import init_params
 from ._config import ACTIVATIONS, Config
-from ._optim import current_lr, init_state, program_key
+from ._optim import init_state, program_key
 
 SHAPE_KEYS = ("window", "n_train", "n_val", "rows")
 HISTORY_COLUMNS = ("epoch", "train_loss", "val_loss", "grad_norm", "lr", "seconds")
@@ -239,7 +239,7 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
                                        clipping=clipping, dtype=dtype, batch=batch,
                                        val_batch=val_batch, steps=dims["window"])
-        lr = current_lr(opt_state)
+        lr = float(config.lr)  # as given; the state holds it rounded to the dtype
 
         best = (math.inf, 0, params)  # (watched loss, epoch, params)
         rows, status = [], "ok"

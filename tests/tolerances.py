@@ -23,3 +23,9 @@ SCALER = dict(rtol=1e-10, atol=1e-12)
 # training with bucketed (front-padded) windows and padded window counts against the unpadded
 # run, float32 (same sums over more zero terms, a few epochs)
 PADDED32 = dict(rtol=1e-4, atol=1e-5)
+# a sweep's runs in worker processes / on Dask against the same runs in this process: same
+# programs and seeds, only the XLA thread count differs (measured bitwise equal here)
+SAME_RUN = dict(rtol=1e-9, atol=0.0)
+# fit(df, load_config(exported)) against the metric recorded in the exported document (the
+# sweep ran it padded to the sweep's shapes); the bound the exported document promises
+REPRODUCE = dict(rel=1e-6, abs=0.0)
