@@ -25,3 +25,4 @@ from ._diagnose import Diagnostics as Diagnostics
 from ._diagnose import loss_surface as loss_surface
 from ._diagnose import loss_slice as loss_slice
 from ._panel import panel as panel
+from ._train import compile_count as compile_count
