@@ -13,9 +13,9 @@ import rnnkit
 
 
 def main():
-    df = rnnkit.datasets.cold_storage_load(years=70 / 365)
-    base = rnnkit.Config(target="load_kw", missing="interpolate", hidden=16, epochs=3)
-    space = {"window": [12, 24], "activation": ["tanh", "relu"]}
+    df = rnnkit.datasets.cold_storage_load(years=40 / 365)
+    base = rnnkit.Config(target="load_kw", missing="interpolate", hidden=8, epochs=2)
+    space = {"window": [12, 24]}
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:
         result = rnnkit.sweep(df, base, space, executor=client.get_executor(), progress=False)
