@@ -25,4 +25,9 @@ from ._diagnose import Diagnostics as Diagnostics
 from ._diagnose import loss_surface as loss_surface
 from ._diagnose import loss_slice as loss_slice
 from ._panel import panel as panel
+from ._sweep import sweep as sweep
+from ._sweep import SweepResult as SweepResult
+from ._plan import plan as plan
+from ._runner import run as run
+from ._store import RunStore as RunStore
 from ._train import compile_count as compile_count

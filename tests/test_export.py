@@ -17,6 +17,7 @@ from jsonschema import Draft202012Validator
 import rnnkit
 from rnnkit import _config
 from rnnkit._config import Config, config_fields
+from tolerances import REPRODUCE
 from rnnkit._export import (FingerprintWarning, check_fingerprint, document, fingerprint, load_config,
                             read_document, save_config, schema, validate, write_document)
 
@@ -268,3 +269,29 @@ def test_a_different_frame_warns(tmp_path):
 def test_public_names():
     assert rnnkit.load_config is load_config and rnnkit.save_config is save_config
     assert rnnkit.check_fingerprint is check_fingerprint
+
+
+def test_export_load_fit_reproduces_the_recorded_metric(tmp_path):
+    # Yearly sunspot numbers 1700-2008, the open data set shipped with statsmodels.
+    import statsmodels.api as sm
+
+    df = sm.datasets.sunspots.load_pandas().data[["SUNACTIVITY"]]
+    base = Config(target="SUNACTIVITY", hidden=4, epochs=3, batch_size=32, season=11)
+    # Two windows: the sweep pads both runs to the longer one; fit alone does not pad.
+    res = rnnkit.sweep(df, base, {"window": [4, 8]}, progress=False)
+    path = res.export(tmp_path / "best.json")
+    doc = read_document(path)
+    assert doc["metric"]["name"] == "val_rmse"
+    assert doc["metric"]["value"] == res.best_run()["val_rmse"] == res.table["val_rmse"].min()
+    assert doc["metrics"]["persistence_val_rmse"] == res.best_run()["persistence_val_rmse"]
+    assert doc["data"]["fingerprint"] == fingerprint(df, res.best())
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the same frame: no fingerprint warning
+        config = load_config(path, df=df)
+    assert config == res.best()
+    again = rnnkit.fit(df, config, progress=False)
+    assert again.metrics.loc["rnn", "val_rmse"] == pytest.approx(doc["metric"]["value"], **REPRODUCE)
+    for k, v in doc["metrics"].items():
+        split_at = k.find("val_") if "val_" in k else k.find("test_")
+        model, col = ("rnn", k) if split_at == 0 else (k[:split_at - 1], k[split_at:])
+        assert again.metrics.loc[model, col] == pytest.approx(v, **REPRODUCE), k
