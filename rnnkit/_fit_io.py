@@ -208,8 +208,9 @@ def load_fit(path, df=None):
                             "training frame, or leave `df` out and call result.predict(frame)")
         actual = frame_actuals(df, prepared)
     out = doc["outcome"]
+    # With the data attached, diagnostics are measured again (window_states(i) for any i).
+    diagnostics = None if prepared is not None else _read_diagnostics(path / "diagnostics.npz")
     return FitResult(params=params, spec=spec, status=out["status"], history=history, metrics=metrics,
                      confusion=confusion, prepared=prepared, actual=actual,
                      best_epoch=out["best_epoch"], compiles=out["compiles"], seconds=out["seconds"],
-                     # with the data attached they are measured again, with window_states(i) for any i
-                     diagnostics=None if prepared is not None else _read_diagnostics(path / "diagnostics.npz"))
+                     diagnostics=diagnostics)

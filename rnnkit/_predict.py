@@ -229,15 +229,19 @@ def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, par
     if prepared.groups is not None:
         cols[spec.config.group_column] = prepared.groups
     if regression:
-        one = len(spec.target_names) == 1
-        for j, t in enumerate(spec.target_names):
-            cols["actual" if one else f"{t}_actual"] = actual[:, j]
-        for j, t in enumerate(spec.target_names):
-            cols["predicted" if one else f"{t}_predicted"] = pred[:, j]
+        cols.update(_regression_columns(actual, pred, spec.target_names))
     else:
         cols.update(_class_columns(actual, pred, spec.classes))
     cols["split"] = split
     return pd.DataFrame(cols, index=_index(prepared, spec))
+
+
+def _regression_columns(actual, pred, names):
+    """actual/predicted (one target) or <target>_actual/<target>_predicted columns."""
+    one = len(names) == 1
+    cols = {("actual" if one else f"{t}_actual"): actual[:, j] for j, t in enumerate(names)}
+    cols.update({("predicted" if one else f"{t}_predicted"): pred[:, j] for j, t in enumerate(names)})
+    return cols
 
 
 def _class_columns(actual, proba, classes):
@@ -253,14 +257,16 @@ def _class_columns(actual, proba, classes):
 
 def _sequence_frame(prepared, spec, actual, parts):
     """window="full": one row per sequence, indexed by the sequence id."""
-    ids, rows_all, proba, split = [], [], [], []
-    for label, (rows, values) in parts.items():
-        rows_all.append(np.asarray(rows))
-        proba.append(np.asarray(values, np.float64))
-        split += [label] * len(rows)
-    rows = np.concatenate(rows_all) if rows_all else np.zeros(0, np.int64)
-    proba = np.concatenate(proba) if proba else np.zeros((0, len(spec.classes)))
+    width = len(spec.target_names) if spec.classes is None else len(spec.classes)
+    rows = [np.zeros(0, np.int64)] + [np.asarray(r) for r, _ in parts.values()]
+    values = [np.zeros((0, width))] + [np.asarray(v, np.float64) for _, v in parts.values()]
+    rows, values = np.concatenate(rows), np.concatenate(values)  # (M,), (M, O or K)
+    split = np.concatenate([np.full(len(r), label, dtype=object) for label, (r, _) in parts.items()]
+                           + [np.zeros(0, object)])
     ids = prepared.groups[rows] if len(rows) else np.zeros(0, object)
-    cols = _class_columns(actual[rows], proba, spec.classes)
-    cols["split"] = np.asarray(split, dtype=object)
+    if spec.classes is None:
+        cols = _regression_columns(actual[rows], values, spec.target_names)
+    else:
+        cols = _class_columns(actual[rows], values, spec.classes)
+    cols["split"] = split
     return pd.DataFrame(cols, index=pd.Index(ids, name=spec.config.group_column))

@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 
 import rnnkit
-from rnnkit import Config, DataError, fit, load_fit
+from rnnkit import Config, DataError, fit, load_fit, prepare
 from rnnkit._baselines import prepared_mase_scale
 from rnnkit._metrics import classification_metrics, regression_metrics
 from rnnkit._model import loss as model_loss
@@ -209,3 +209,56 @@ def test_classification_metrics_match_predict(sine):
             np.testing.assert_allclose(r.metrics.loc["rnn", f"{split}_{k}"], v, **METRIC)
         assert int(r.confusion[split].to_numpy().sum()) == len(part)
         assert (part["predicted"] == np.where(part["p_up"] > part["p_down"], "up", "down")).all()
+
+
+def test_stop_and_on_epoch(sine):
+    import threading
+
+    stop, seen = threading.Event(), []
+    stop.set()  # checked after every epoch
+    r = fit(sine, Config(**SINE, epochs=5), progress=False, stop=stop, on_epoch=seen.append)
+    assert r.status == "stopped by user at epoch 1"
+    assert [row["epoch"] for row in seen] == [1] and len(r.history) == 1
+
+
+def _groups_frame():
+    rng = np.random.default_rng(1)
+    return pd.DataFrame({"g": np.repeat(["s1", "s2", "s3", "s4"], 30),
+                         "a": rng.normal(size=120), "b": rng.normal(size=120) * 5 + 3,
+                         "x": rng.normal(size=120)})
+
+
+def test_prediction_frame_several_targets_and_groups():
+    # The frame layout alone (no training): predictions set to actual + 1 on every target row.
+    from rnnkit._predict import frame_actuals, prediction_frame, spec_of
+
+    df = _groups_frame()
+    p = prepare(df, Config(target=("a", "b"), group_column="g", window=3, season=None,
+                           split=(0.5, 0.25, 0.25)))
+    actual = frame_actuals(df, p)
+    np.testing.assert_array_equal(actual, df[["a", "b"]].to_numpy())
+    parts = {s: (p.target_rows(s), actual[p.target_rows(s)] + 1.0) for s in ("train", "val", "test")}
+    pred = prediction_frame(p, spec_of(p, df.index.name), actual, parts)
+    assert list(pred.columns) == ["g", "a_actual", "b_actual", "a_predicted", "b_predicted", "split"]
+    assert pred.index.equals(df.index) and (pred["g"] == df["g"]).all()
+    done = pred["split"].notna()
+    np.testing.assert_allclose(pred.loc[done, "b_predicted"] - pred.loc[done, "b_actual"], 1.0)
+    assert set(pred["split"].dropna()) == {"train", "val", "test"}
+    # every sequence starts with window + horizon - 1 = 3 rows that no window predicts
+    assert pred.groupby("g")["a_predicted"].apply(lambda s: s.iloc[:3].isna().all()).all()
+
+
+def test_prediction_frame_whole_sequence_regression():
+    from rnnkit._predict import frame_actuals, prediction_frame, spec_of
+
+    df = _groups_frame()
+    p = prepare(df, Config(target="a", group_column="g", window="full", season=None,
+                           target_as_input=False, split=(0.5, 0.25, 0.25)))
+    actual = frame_actuals(df, p)
+    parts = {s: (p.target_rows(s), actual[p.target_rows(s)] * 2) for s in ("train", "val", "test")}
+    pred = prediction_frame(p, spec_of(p), actual, parts)
+    assert pred.index.name == "g" and sorted(pred.index) == ["s1", "s2", "s3", "s4"]
+    assert list(pred.columns) == ["actual", "predicted", "split"]
+    last = df.groupby("g")["a"].last()
+    np.testing.assert_array_equal(pred["actual"], last[pred.index])
+    np.testing.assert_array_equal(pred["predicted"], 2 * last[pred.index])
