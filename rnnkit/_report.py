@@ -12,14 +12,14 @@ from typing import Optional
 import pandas as pd
 
 _CSS = """
-body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 70rem; color: #1d2430; }
+body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 76rem; color: #1d2430; }
 h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem; border-bottom: 1px solid #ccd; }
 table { border-collapse: collapse; font-size: 0.85rem; margin: 0.5rem 0; }
 td, th { border: 1px solid #d5d9e0; padding: 0.2rem 0.5rem; text-align: right; }
 th { background: #eef1f6; }
-figure { display: inline-block; margin: 0.5rem; vertical-align: top; }
+figure { display: inline-block; margin: 0.4rem; vertical-align: top; width: 36rem; }
 figcaption { font-size: 0.8rem; color: #555; max-width: 32rem; }
-img { max-width: 34rem; }
+img { max-width: 36rem; }
 .wide { overflow-x: auto; }
 .note { background: #fff8e6; border-left: 4px solid #e0a800; padding: 0.5rem 1rem; }
 """
@@ -28,6 +28,7 @@ _CAPTIONS = {
     "training": "Training and validation loss per epoch; the best epoch is the one kept.",
     "metrics": "Validation score of the network beside the baselines.",
     "forecast": "Actual against predicted values on the original time index.",
+    "forecast_recent": "The last steps of the test range, up close.",
     "gradient_flow": "Mean norm of dL/dh_k over the window: steep decay means the network "
                      "cannot learn from early steps (vanishing gradients).",
     "spectrum": "Singular values of the recurrent matrix V; values above 1 can make "
@@ -40,6 +41,9 @@ _CAPTIONS = {
     "loss_slice": "Validation loss along a random direction in the recurrent matrix V.",
     "sweep_surface": "Mean validation metric over two swept settings.",
 }
+
+
+_RECENT = 300  # test rows shown up close
 
 
 def _png(fig) -> str:
@@ -59,6 +63,18 @@ def report_figures(result, sweep_result=None) -> dict:
     from ._surface import loss_slice, loss_surface
 
     figs = dict(result.figures())
+    if result.prepared is not None and result.config.task == "regression" and \
+            result.config.window != "full":
+        pred = result.predict()
+        if "split" in pred.columns:
+            recent = pred[pred["split"] == "test"].iloc[-_RECENT:]
+            if len(recent) >= 2:  # shown right after the full forecast
+                ordered = {}
+                for name, fig in figs.items():
+                    ordered[name] = fig
+                    if name == "forecast":
+                        ordered["forecast_recent"] = plots.forecast(recent)
+                figs = ordered
     if result.prepared is not None:
         alphas, betas, values = loss_surface(result, steps=15)
         figs["loss_surface"] = plots.loss_surface(alphas, betas, values)
