@@ -112,8 +112,8 @@ class Panel:
                               [c["sweep_windows"], c["sweep_hidden"], c["sweep_activations"],
                                c["sweep_seeds"]]),
         }
-        c["window"].layout.width = "62%"
-        c["window_full"].layout.width = "38%"
+        c["window"].layout.width = "52%"
+        c["window_full"].layout.width = "48%"
         settings = widgets.Tab(children=[widgets.VBox(v) for v in pages.values()],
                                titles=tuple(pages), selected_index=1)
         actions = widgets.HBox([self.train_button, self.sweep_button, self.stop_button])
@@ -223,19 +223,20 @@ class Panel:
     def _train(self, cfg: Config) -> None:
         result = fit(self._df, cfg, progress=False, stop=self._stop, on_epoch=self._on_epoch)
         self.result = result
-        self.progress_label.value = "drawing figures..."
+        self.progress_label.value = "measuring the network and drawing figures..."
         self.views.show_fit(result)
         status = str(result.status)
-        epochs = len(result.history)
         if status.startswith("diverged"):
             self.progress.bar_style = "danger"
             self._say("warn", f"The run {status}: the loss became infinite or NaN. Lower the "
-                              "learning rate, turn on clipping or pick another init. "
-                              "The curves show where it happened.")
+                              "learning rate, turn on clipping or pick another init. The "
+                              "figures show the last good weights; the curves mark the epoch.")
         else:
             self.progress.bar_style = "success"
-            self._say("ok", f"Trained {epochs} epochs ({status}). "
+            self._say("ok", f"Trained {len(result.history)} epochs ({status}). "
                             f"{self.views.headline(result)}")
+        self.progress_label.value = "drawing the loss surface..."
+        self.views.show_surfaces(result)
         self.progress_label.value = f"done: {status}"
 
     # --- sweep ---

@@ -6,6 +6,8 @@ A control never holds state of its own beyond its ``.value``.
 """
 from __future__ import annotations
 
+import math
+
 import ipywidgets as widgets
 import pandas as pd
 
@@ -149,9 +151,22 @@ def read_config(c: dict, base: Config) -> Config:
         group_column=c["group_column"].value, missing=c["missing"].value,
         window=window, horizon=int(c["horizon"].value), hidden=int(c["hidden"].value),
         activation=c["activation"].value, init=c["init"].value,
-        optimizer=c["optimizer"].value, lr=float(c["lr"].value),
+        optimizer=c["optimizer"].value, lr=read_lr(c["lr"], base.lr),
         epochs=int(c["epochs"].value), batch_size=int(c["batch_size"].value),
         clip=float(c["clip"].value) or None, seed=int(c["seed"].value))
+
+
+def read_lr(slider: widgets.FloatLogSlider, start: float) -> float:
+    """The learning rate the slider means.
+
+    The browser snaps the slider to its grid (10**(min + k*step)), so 5e-3 comes
+    back as 0.0050119. Within half a step of the start value the start value is
+    meant; elsewhere the two significant digits the readout shows.
+    """
+    v = float(slider.value)
+    if v > 0 and start > 0 and abs(math.log10(v) - math.log10(start)) <= slider.step / 2 + 1e-9:
+        return float(start)
+    return float(f"{v:.2g}")
 
 
 def _whole_numbers(text: str, label: str, allow_full: bool = False) -> list:

@@ -12,7 +12,7 @@ import pandas as pd
 
 from ._baselines import baseline_predictions
 from ._predict import per_row
-from ._surface import loss_slice, loss_surface
+from ._diagnose import loss_slice, loss_surface
 
 SURFACE_STEPS = 15  # grid points per axis of the 2-D loss surface (odd: the trained point is on it)
 SLICE_STEPS = 41

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import html
 import io
-from typing import Optional
+from typing import Callable
 
 import ipywidgets as widgets
 import numpy as np
@@ -34,7 +34,7 @@ def render(fig: Figure) -> bytes:
 
 def _image(name: str) -> widgets.Image:
     img = widgets.Image(format="png", layout=widgets.Layout(width="100%", max_width="760px",
-                                                             height="auto"))
+                                                             height="auto", display="none"))
     img.add_class("rnnkit-fig-" + name)
     return img
 
@@ -61,8 +61,7 @@ def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
 class FigureViews:
     """The right-hand pages of the panel: one ipywidgets.Tab of figures and tables."""
 
-    PAGES = ("Training", "Forecast", "Gradients", "Hidden state", "Loss surface", "Sweep",
-             "Scores", "JSON")
+    PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Scores", "JSON")
 
     def __init__(self):
         names = ("training", "forecast", "gradient", "spectrum", "heatmap", "path", "surface",
@@ -94,8 +93,8 @@ class FigureViews:
             "Training": [i["training"]],
             "Forecast": [i["forecast"]],
             "Gradients": [_pair(i["gradient"], i["spectrum"]), self.diagnostics_table],
-            "Hidden state": [self.window_slider, _pair(i["heatmap"], i["path"])],
-            "Loss surface": [_pair(i["surface"], i["slice"])],
+            "States": [self.window_slider, _pair(i["heatmap"], i["path"])],
+            "Surface": [_pair(i["surface"], i["slice"])],
             "Sweep": [widgets.HBox([self.sweep_x, self.sweep_y]), i["sweep"], self.sweep_table],
             "Scores": [self.metrics_table, i["scores"]],
             "JSON": [self.document],
@@ -114,58 +113,82 @@ class FigureViews:
         self.tab.selected_index = self.PAGES.index(page)
 
     # --- a trained network ---
+    def _draw(self, page: str, image: str, make: Callable[[], Figure]) -> bool:
+        """Render one figure into its image; a failure blanks it and says why on its page."""
+        try:
+            self.set_image(image, render(make()))
+            return True
+        except Exception as e:  # one figure that cannot be drawn must not stop the others
+            self.set_image(image, b"")
+            self._note(page, f"{image} figure not drawn: {type(e).__name__}: {e}")
+            return False
+
+    def set_image(self, name: str, png: bytes) -> None:
+        """Show PNG bytes in one image; empty bytes hide it (no broken-image icon)."""
+        img = self.images[name]
+        img.value = png
+        img.layout.display = None if png else "none"
+
     def show_fit(self, result) -> None:
-        """Draw every page of one FitResult (called in the worker thread)."""
+        """Draw every page of one FitResult except the loss surfaces (called in the worker thread)."""
         self.result = result
         cfg = result.config
-        im = self.images
-        im["training"].value = render(plots.training_curves(result.history, status=str(result.status)))
-        self.notes["Training"].value = ""
+        self._note("Training", "")
+        self._draw("Training", "training",
+                   lambda: plots.training_curves(result.history, status=str(result.status)))
 
         pred = forecast_frame(result)
         if cfg.task == "classification":
-            im["forecast"].value = render(plots.class_forecast(pred))
-            self._note("Forecast", "Test range: class probabilities with the actual and predicted class.")
+            self._note("Forecast", "Held-out range: class probabilities, with the actual and the "
+                                   "predicted class in the strips above.")
+            self._draw("Forecast", "forecast", lambda: plots.class_forecast(pred))
         else:
             base_name, base = baseline_series(result, pred.index)
-            im["forecast"].value = render(plots.forecast(pred, baseline=base, baseline_name=base_name))
-            self._note("Forecast", f"Test range, original units; dashed: the best baseline ({base_name}).")
+            self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
+                                   f"({base_name}).")
+            self._draw("Forecast", "forecast",
+                       lambda: plots.forecast(pred, baseline=base, baseline_name=base_name))
+
+        metrics = result.metrics
+        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
+        column = score_column(metrics, cfg.task)
+        self._note("Scores", "")
+        self._draw("Scores", "scores", lambda: plots.metrics_bar(metrics, column=column,
+                                                                 highlight="rnn"))
 
         d = result.diagnostics
         sigma = float(d.singular_values[0])
         factor = sigma * gradient_factor(cfg.activation)
-        im["gradient"].value = render(plots.gradient_flow(
-            gradient_norms(d), sigma_max=factor if factor > 0 else None))
-        im["spectrum"].value = render(plots.spectrum(d.singular_values))
-        self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
-        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows; dashed: "
-                                f"||dL/dh_T|| sigma_max^(T-k) with sigma_max(V) = {sigma:.3g}"
+        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. Dashed: the "
+                                f"bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
                                 + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+        self._draw("Gradients", "gradient", lambda: plots.gradient_flow(
+            gradient_norms(d), sigma_max=factor if factor > 0 else None))
+        self._draw("Gradients", "spectrum", lambda: plots.spectrum(d.singular_values))
+        self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
 
         n = int(d.val_states.shape[0])
+        self._note("States", f"Left: one {d.split} window, units x steps (the slider picks "
+                                   f"one of {n}). Right: the last state of every {d.split} window "
+                                   "on its first two principal components.")
         self._quiet = True
         self.window_slider.value = 0
         self.window_slider.max = max(n - 1, 0)
         self._quiet = False
         self._draw_window(0)
-        im["path"].value = render(plots.hidden_path(d.val_states, times=d.val_times))
-        self._note("Hidden state", f"Left: one {d.split} window, units x steps (the slider picks "
-                                   f"one of {n}). Right: the last state of every {d.split} window "
-                                   "on its first two principal components.")
+        self._draw("States", "path", lambda: plots.hidden_path(d.val_states, times=d.val_times))
+        self.set_image("surface", b"")
+        self.set_image("slice", b"")
+        self._note("Surface", "Drawing...")
 
+    def show_surfaces(self, result) -> None:
+        """Draw the loss-surface page (the slowest: many loss evaluations)."""
         (a, b, surface), (s, values) = loss_planes(result)
-        im["surface"].value = render(plots.loss_surface(a, b, surface))
-        im["slice"].value = render(plots.loss_slice(s, values, label="V"))
-        self._note("Loss surface", "Left: validation loss on a random plane through the trained "
+        self._note("Surface", "Left: validation loss on a random plane through the trained "
                                    "weights, filter-normalised (Li et al. 2018). Right: along a "
                                    "random direction in V only.")
-
-        metrics = result.metrics
-        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
-        column = score_column(metrics, cfg.task)
-        im["scores"].value = render(plots.metrics_bar(metrics, column=column,
-                                                      highlight=metrics.index[0]))
-        self._note("Scores", "")
+        self._draw("Surface", "surface", lambda: plots.loss_surface(a, b, surface))
+        self._draw("Surface", "slice", lambda: plots.loss_slice(s, values, label="V"))
 
     def _note(self, page: str, text: str) -> None:
         self.notes[page].value = (f"<div style='color:#555;margin:2px 0 6px'>{html.escape(text)}</div>"
@@ -173,9 +196,12 @@ class FigureViews:
 
     def _draw_window(self, i: int) -> None:
         r = self.result
-        states = r.diagnostics.window_states(int(i))  # (T, H)
-        times = window_times(r, int(i), len(states))
-        self.images["heatmap"].value = render(plots.hidden_heatmap(states, times=times))
+
+        def make():
+            states = r.diagnostics.window_states(int(i))  # (T, H)
+            return plots.hidden_heatmap(states, times=window_times(r, int(i), len(states)))
+
+        self._draw("States", "heatmap", make)
 
     def _on_window(self, change) -> None:
         if self._quiet or self.result is None:
@@ -209,7 +235,7 @@ class FigureViews:
         if x == y:
             self._note("Sweep", "Pick two different settings for the two axes.")
             return
-        self.images["sweep"].value = render(plots.sweep_surface(r.table, x, y, metric=r.metric))
+        self._draw("Sweep", "sweep", lambda: plots.sweep_surface(r.table, x, y, metric=r.metric))
 
     def _on_axes(self, change) -> None:
         if not self._quiet and self.sweep_result is not None:
