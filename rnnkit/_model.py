@@ -152,7 +152,7 @@ def _states(inp: _Inputs, act, fast: bool):
 
 def _project_out(h, p):
     """o = h W + c over the leading axes of h (..., H) -> (..., O)."""
-    o = lax.dot_general(h, p["W"], (((h.ndim - 1,), (0,)), ((), ())))
+    o = _scan.times(h, p["W"]) if h.ndim == 3 else h @ p["W"]
     return o + p["c"].reshape((1,) * (h.ndim - 1) + p["c"].shape)
 
 
