@@ -189,9 +189,10 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     ``config.patience``. The parameters returned are always those of the best
     epoch so far (lowest watched loss), also when all epochs ran.
 
-    A non-finite loss or gradient norm ends training, without an exception,
-    with status "diverged at epoch N"; the params are then the best finite
-    ones before it (the initial ones if epoch 1 diverged, best_epoch 0).
+    A non-finite training loss, gradient norm or validation loss ends
+    training, without an exception, with status "diverged at epoch N"; the
+    params are then the best finite ones before it (the initial ones if epoch 1
+    diverged, best_epoch 0).
     Same config and seed on the same machine: bitwise the same outcome.
 
     Args:
@@ -205,8 +206,8 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         compiled program. Window padding is at the front with masked steps, so
         the result equals the unpadded run up to float rounding.
       progress: show a tqdm bar over epochs.
-      stop: a threading.Event, checked after every epoch; when set, training
-        ends with status "stopped by user at epoch N".
+      stop: a threading.Event, checked after every epoch (so at least one epoch
+        runs); when set, training ends with status "stopped by user at epoch N".
       on_epoch: called after every epoch with that epoch's history row as a dict.
 
     Returns:
@@ -221,63 +222,89 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     t0 = time.perf_counter()
     compiles0 = _epoch.thread_compile_count()
     dims = _check_shapes(shapes, prepared)
-    dtype = np.dtype(config.dtype)
+    has_val = len(prepared.starts["val"]) > 0
     with precision(config.dtype):
-        series = _series(prepared, dtype, dims)
-        batch = config.batch_size
-        val_batch = min(_epoch.eval_batch(dims["window"], config.hidden),
-                        _round_up(dims["n_val"], 16))
-        train_split = jax.tree.map(jnp.asarray, _split(prepared, "train", _round_up(dims["n_train"], batch)))
-        val_split = jax.tree.map(jnp.asarray, _split(prepared, "val", _round_up(dims["n_val"], val_batch)))
-        has_val = len(prepared.starts["val"]) > 0
-        act = jnp.asarray(activation_index(config.activation))
-
-        params = initial_params(prepared, config)
-        opt_state = init_state(config.optimizer, config.lr, config.clip, config.weight_decay, params)
-        state = (params, opt_state, jax.random.split(jax.random.key(config.seed))[1])
-        name, clipping = program_key(config.optimizer, config.clip)
-        program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
-                                       clipping=clipping, dtype=dtype, batch=batch,
-                                       val_batch=val_batch, steps=dims["window"])
-        lr = float(config.lr)  # as given; the state holds it rounded to the dtype
-
-        best = (math.inf, 0, params)  # (watched loss, epoch, params)
+        # 1. data on the device, initial state, the (cached) epoch program
+        state, run = _setup(prepared, config, dims)
+        best = (math.inf, 0, state[0])  # (watched loss, epoch, params)
         rows, status = [], "ok"
         bar = tqdm(total=config.epochs, desc="training", unit="epoch", disable=not progress,
                    leave=False)
         try:
             for epoch in range(1, config.epochs + 1):
+                # 2. one epoch = one call of the compiled program, one host sync
                 t_epoch = time.perf_counter()
-                state, stats = program(state, series, train_split, val_split, act)
-                stats = jax.device_get(stats)  # the one host sync per epoch
+                state, stats = run.program(state, run.series, run.train, run.val, run.act)
+                stats = jax.device_get(stats)
                 row = {"epoch": epoch, "train_loss": float(stats.train_loss),
                        "val_loss": float(stats.val_loss), "grad_norm": float(stats.grad_norm),
-                       "lr": lr, "seconds": time.perf_counter() - t_epoch}
+                       "lr": float(config.lr), "seconds": time.perf_counter() - t_epoch}
                 rows.append(row)
                 bar.update(1)
                 bar.set_postfix(train=f"{row['train_loss']:.4g}", val=f"{row['val_loss']:.4g}")
                 if on_epoch is not None:
                     on_epoch(dict(row))
-                watched = row["val_loss"] if has_val else row["train_loss"]
-                numbers = (row["train_loss"], row["grad_norm"]) + ((watched,) if has_val else ())
-                if not (bool(stats.finite) and all(math.isfinite(v) for v in numbers)):
-                    status = f"diverged at epoch {epoch}"
-                    break
-                if watched < best[0]:
-                    best = (watched, epoch, state[0])
-                elif config.patience is not None and epoch - best[1] >= config.patience:
-                    status = f"stopped early at epoch {epoch}"
-                    break
-                if stop is not None and stop.is_set():
-                    status = f"stopped by user at epoch {epoch}"
+                # 3. keep the best parameters; decide whether to go on
+                best, status = _judge(row, bool(stats.finite), has_val, best, state[0],
+                                      config.patience, stop)
+                if status != "ok":
                     break
         finally:
             bar.close()
-        out_params = {k: np.asarray(v) for k, v in jax.device_get(best[2]).items()}
+        params = {k: np.asarray(v) for k, v in jax.device_get(best[2]).items()}
     history = pd.DataFrame(rows, columns=list(HISTORY_COLUMNS))
     history["epoch"] = history["epoch"].astype(np.int64)
-    return TrainOutcome(out_params, history, status, int(best[1]),
+    return TrainOutcome(params, history, status, int(best[1]),
                         _epoch.thread_compile_count() - compiles0, time.perf_counter() - t0)
+
+
+class _Run(NamedTuple):
+    """Everything an epoch needs besides the training state."""
+
+    program: Callable  # the cached jitted epoch function
+    series: _epoch.Series
+    train: _epoch.Split
+    val: _epoch.Split
+    act: jax.Array  # () int32 activation index
+
+
+def _setup(prepared, config: Config, dims: Dict[str, int]):
+    """The initial state (params, opt_state, key) and the _Run for this call."""
+    dtype = np.dtype(config.dtype)
+    batch = config.batch_size
+    val_batch = min(_epoch.eval_batch(dims["window"], config.hidden), _round_up(dims["n_val"], 16))
+    train_split = _split(prepared, "train", _round_up(dims["n_train"], batch))
+    val_split = _split(prepared, "val", _round_up(dims["n_val"], val_batch))
+    params = initial_params(prepared, config)
+    opt_state = init_state(config.optimizer, config.lr, config.clip, config.weight_decay, params)
+    state = (params, opt_state, jax.random.split(jax.random.key(config.seed))[1])
+    name, clipping = program_key(config.optimizer, config.clip)
+    program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
+                                   clipping=clipping, dtype=dtype, batch=batch,
+                                   val_batch=val_batch, steps=dims["window"])
+    return state, _Run(program, _series(prepared, dtype, dims),
+                       jax.tree.map(jnp.asarray, train_split), jax.tree.map(jnp.asarray, val_split),
+                       jnp.asarray(activation_index(config.activation)))
+
+
+def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience, stop):
+    """After an epoch: the updated best (loss, epoch, params) and the status ("ok" = go on).
+
+    Divergence is checked first (its parameters must never become the best),
+    then improvement, then patience, then the user's stop.
+    """
+    epoch = row["epoch"]
+    watched = row["val_loss"] if has_val else row["train_loss"]
+    numbers = (row["train_loss"], row["grad_norm"], watched)
+    if not (finite and all(math.isfinite(v) for v in numbers)):
+        return best, f"diverged at epoch {epoch}"
+    if watched < best[0]:
+        best = (watched, epoch, params)
+    elif patience is not None and epoch - best[1] >= patience:
+        return best, f"stopped early at epoch {epoch}"
+    if stop is not None and stop.is_set():
+        return best, f"stopped by user at epoch {epoch}"
+    return best, "ok"
 
 
 def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Optional[dict] = None,
