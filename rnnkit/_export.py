@@ -36,7 +36,7 @@ from jsonschema import Draft202012Validator, validators
 from jsonschema.exceptions import best_match
 from pandas.api import types as ptypes
 
-from ._checks import resolve_columns
+from ._checks import require_column, resolve_columns
 from ._config import Config
 
 FORMAT = "rnnkit.experiment"
@@ -106,6 +106,9 @@ def used_columns(df: pd.DataFrame, config: Optional[Config]) -> list:
     if config is None:
         return sorted(df.columns, key=str)
     special = [c for c in (config.time_column, config.group_column, config.split_column) if c]
+    for field in ("time_column", "group_column", "split_column"):
+        if getattr(config, field) is not None:
+            require_column(df, getattr(config, field), field)
     targets, feats = resolve_columns(df, config, special)
     return sorted(set(targets) | set(feats) | set(special))
 

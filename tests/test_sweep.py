@@ -7,6 +7,7 @@ import sys
 import textwrap
 import threading
 import time
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -193,8 +194,8 @@ import statsmodels.api as sm
 import rnnkit
 df = sm.datasets.sunspots.load_pandas().data[["SUNACTIVITY"]]
 base = rnnkit.Config(target="SUNACTIVITY", hidden=4, epochs=2, batch_size=32, season=11)
-rnnkit.sweep(df, base, {"window": [4, 6, 8, 10], "activation": ["tanh", "relu"]}, store=sys.argv[1],
-             progress=False, on_run=lambda rec: time.sleep(0.5))
+rnnkit.sweep(df, base, {"window": [4, 8], "activation": ["tanh", "relu"]}, seeds=2, store=sys.argv[1],
+             progress=False, on_run=lambda rec: time.sleep(0.3))
 """
 
 
@@ -232,12 +233,12 @@ def test_a_killed_sweep_resumes_with_every_run_once(sunspots, tmp_path):
     assert 3 <= before < 8, f"the job was not killed midway ({before} of 8 stored): {err.read_text()}"
     base = Config(target="SUNACTIVITY", hidden=4, epochs=2, batch_size=32, season=11)
     ran = []
-    res = sweep(sunspots, base, {"window": [4, 6, 8, 10], "activation": ["tanh", "relu"]}, store=db,
+    res = sweep(sunspots, base, {"window": [4, 8], "activation": ["tanh", "relu"]}, seeds=2, store=db,
                 progress=False, on_run=ran.append)
     assert len(ran) == 8 - before  # only the missing runs ran
     assert len(res.table) == 8 and _rows(db) == 8 and res.table["key"].is_unique
-    assert sorted(zip(res.table["window"], res.table["activation"])) == sorted(
-        (w, a) for w in (4, 6, 8, 10) for a in ("tanh", "relu"))
+    assert sorted(zip(res.table["window"], res.table["activation"], res.table["seed"])) == sorted(
+        (w, a, s) for w in (4, 8) for a in ("tanh", "relu") for s in (0, 1))
 
 
 # ---------------------------------------------------------------- processes
@@ -257,3 +258,40 @@ def test_process_workers_equal_the_serial_run(sunspots):
 def test_public_names():
     assert rnnkit.sweep is sweep and rnnkit.plan is plan
     assert rnnkit.SweepResult.__name__ == "SweepResult"
+
+
+def test_any_executor_stop_and_errors(sunspots, tmp_path, monkeypatch):
+    # A thread pool is a concurrent.futures.Executor too: the same path as Dask, without processes.
+    db = tmp_path / "runs.db"
+    space = {"window": [4, 8], "activation": ["tanh", "relu", "linear"]}
+    serial = sweep(sunspots, BASE, space, progress=False)
+    stop = threading.Event()
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        part = sweep(sunspots, BASE, space, executor=pool, store=db, progress=False, stop=stop,
+                     on_run=lambda rec: stop.set())
+    assert 1 <= len(part.table) < 6 and part.missing == 6 - len(part.table)
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        rest = sweep(sunspots, BASE, space, executor=pool, workers=2, store=db, progress=False)
+    cols = [c for c in serial.table.columns if c.startswith(("val_", "test_"))]
+    pd.testing.assert_frame_equal(serial.table[cols + ["key"]], rest.table[cols + ["key"]], **SAME_RUN)
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("a bug, not bad data")
+    monkeypatch.setattr("rnnkit._runner.fit", broken)
+    with ThreadPoolExecutor(max_workers=2) as pool, pytest.raises(RuntimeError, match="a bug"):
+        sweep(sunspots, BASE, {"window": [5, 6]}, executor=pool, store=db, progress=False)
+
+
+def test_classification_sweep_ranks_by_log_loss():
+    # Our generated demo scenario (labelled machine cycles): this checks the sweep's plumbing
+    # for classification scores, not the quality of the network.
+    df = rnnkit.datasets.packaging_line_faults(n_cycles=30)
+    cfg = rnnkit.datasets.suggested_config("packaging_line_faults").replace(hidden=4, epochs=2)
+    res = sweep(df, cfg, {"activation": ["tanh", "relu"]}, progress=False)
+    assert res.metric == "val_log_loss"
+    assert {"val_accuracy", "val_balanced_accuracy", "test_log_loss", "majority_val_log_loss"} <= set(
+        res.table.columns)
+    s = res.summary()
+    assert s["val_log_loss"].is_monotonic_increasing and res.best().activation == s["activation"][0]
+    res.metric = "val_accuracy"  # higher is better
+    assert res.summary()["val_accuracy"].is_monotonic_decreasing
