@@ -223,9 +223,11 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
     fps = _fingerprints(df, configs)
     keys = [run_key(c, fp) for c, fp in zip(configs, fps)]
     done = store.keys()
-    todo = [i for i in range(len(configs)) if keys[i] not in done]
-    todo = list(dict.fromkeys(todo))
-    bar = tqdm(total=len(configs), initial=len(configs) - len(todo), desc="sweep", unit="run",
+    first = {}  # key -> first plan position: a Config listed twice runs once
+    for i, k in enumerate(keys):
+        first.setdefault(k, i)
+    todo = [i for k, i in first.items() if k not in done]
+    bar = tqdm(total=len(first), initial=len(first) - len(todo), desc="sweep", unit="run",
                disable=not progress)
 
     def finish(i, outcome):

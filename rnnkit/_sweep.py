@@ -184,9 +184,13 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         seeds: seeds per setting (count: config.seed + 0..n-1) or a list of seeds.
         metric: score to rank by; default "val_rmse" (regression) / "val_log_loss"
             (classification).
-        workers: processes to run in (1: this process).
+        workers: processes to run in (1: this process). Each worker is a spawned
+            process with one XLA and BLAS thread; results equal the serial run's.
         executor: a concurrent.futures.Executor to run on instead, e.g.
-            ``dask.distributed.Client(...).get_executor()``.
+            ``dask.distributed.Client(...).get_executor()``; every run is
+            submitted at once (workers > 1: at most that many in flight). A
+            worker process sets XLA_FLAGS for one thread before its first jax
+            work; this process keeps the store and writes every row.
         store: path of the SQLite run store (resume: give the same path again),
             a RunStore, or None (in memory).
         progress: show a tqdm bar over runs.
