@@ -10,7 +10,7 @@ import pytest
 from rnnkit import Config, prepare
 from rnnkit._model import loss as model_loss
 from rnnkit._model import outputs as model_outputs
-from rnnkit._train import compile_count, evaluate, initial_params, shape_plan, train
+from rnnkit._train import _judge, compile_count, evaluate, initial_params, shape_plan, train
 from tolerances import EXACT32, EXACT64, PADDED32
 
 # Most tests share these sizes so that they share one compiled epoch program.
@@ -127,13 +127,29 @@ def test_same_config_and_seed_is_bitwise_repeatable(frame):
 def test_huge_learning_rate_diverges_without_exception(frame):
     p, cfg, out = run(frame, epochs=20, optimizer="sgd", lr=10.0, clip=None, activation="linear",
                       batch_size=8)
-    assert out.status.startswith("diverged at epoch ")
-    n = int(out.status.rsplit(" ", 1)[1])
-    assert len(out.history) == n and out.best_epoch < n
-    assert all(np.all(np.isfinite(v)) for v in out.params.values())
-    if out.best_epoch == 0:  # the initial parameters come back
-        for k, v in initial_params(p, cfg).items():
-            np.testing.assert_array_equal(out.params[k], np.asarray(v))
+    assert out.status == "diverged at epoch 1" and len(out.history) == 1 and out.best_epoch == 0
+    for k, v in initial_params(p, cfg).items():  # the initial parameters come back
+        np.testing.assert_array_equal(out.params[k], np.asarray(v))
+
+
+def test_divergence_later_keeps_the_best_finite_epoch():
+    # The per-epoch verdict on its own: a non-finite epoch never becomes the best, and the
+    # user's stop and patience are only looked at after divergence and improvement.
+    rows = [{"epoch": e, "train_loss": 1.0, "val_loss": v, "grad_norm": 1.0}
+            for e, v in enumerate([0.5, 0.3, 0.4, np.nan, 0.1], start=1)]
+    best, verdicts = (np.inf, 0, "p0"), []
+    for row, finite in zip(rows, [True, True, True, True, False]):
+        best, status = _judge(row, finite, True, best, f"p{row['epoch']}", patience=5, stop=None)
+        verdicts.append(status)
+        if status != "ok":
+            break
+    assert verdicts == ["ok", "ok", "ok", "diverged at epoch 4"] and best == (0.3, 2, "p2")
+    stop = threading.Event()
+    stop.set()
+    assert _judge(rows[0], False, True, (np.inf, 0, "p0"), "p1", 5, stop)[1] == "diverged at epoch 1"
+    assert _judge(rows[2], True, True, (0.3, 2, "p2"), "p3", 1, stop)[1] == "stopped early at epoch 3"
+    assert _judge(rows[1], True, True, (0.5, 1, "p1"), "p2", 1, stop) == ((0.3, 2, "p2"),
+                                                                          "stopped by user at epoch 2")
 
 
 def test_early_stopping_restores_the_best_epoch():
