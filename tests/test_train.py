@@ -10,6 +10,7 @@ import pytest
 from rnnkit import Config, prepare
 from rnnkit._model import loss as model_loss
 from rnnkit._model import outputs as model_outputs
+from rnnkit._optim import hyperparams, init_state, make_optimizer
 from rnnkit._train import _judge, compile_count, evaluate, initial_params, shape_plan, train
 from tolerances import EXACT32, EXACT64, PADDED32
 
@@ -267,3 +268,29 @@ def test_bad_arguments_name_the_field(frame):
         evaluate(initial_params(p, cfg), p, "holdout")
     with pytest.raises(ValueError, match="prepareds"):
         shape_plan([])
+
+
+@pytest.mark.parametrize("name, reference", [
+    ("sgd", lambda lr: optax.sgd(lr)),
+    ("momentum", lambda lr: optax.sgd(lr, momentum=0.9)),
+    ("rmsprop", lambda lr: optax.rmsprop(lr)),
+    ("adam", lambda lr: optax.adam(lr)),
+    ("adamw", lambda lr: optax.adamw(lr, weight_decay=0.2)),
+])
+def test_injected_optimizers_equal_optax_own(name, reference):
+    # Reference library: optax. Two steps of our injected, clipped optimizer equal optax's own
+    # chain(clip_by_global_norm, optimizer) built with constant hyperparameters.
+    rng = np.random.default_rng(0)
+    params = {"U": rng.standard_normal((2, 3)), "c": rng.standard_normal(1)}
+    grads = [{k: 3 * rng.standard_normal(v.shape) for k, v in params.items()} for _ in range(2)]
+    ours = make_optimizer(name, True, np.float64)(**hyperparams(name, 0.1, 0.5, 0.2, np.float64))
+    ref = optax.chain(optax.clip_by_global_norm(0.5), reference(0.1))
+    state_ours = init_state(name, 0.1, 0.5, 0.2, params)
+    p_ours, p_ref, state_ref = dict(params), dict(params), ref.init(params)
+    for g in grads:
+        u, state_ours = ours.update(g, state_ours, p_ours)
+        p_ours = optax.apply_updates(p_ours, u)
+        u, state_ref = ref.update(g, state_ref, p_ref)
+        p_ref = optax.apply_updates(p_ref, u)
+    for k in params:
+        np.testing.assert_allclose(p_ours[k], p_ref[k], **EXACT64)
