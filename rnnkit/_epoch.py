@@ -7,7 +7,9 @@ memory grows with the series, not with series x window.
 
 One epoch is ONE program: a shuffle, a ``lax.while_loop`` over the minibatches
 (each one gather + loss + fast BPTT + optax update), then a batched pass for the
-validation loss. Everything that may differ between runs of a sweep without
+validation loss. A while loop rather than a scan: its trip count is data, so
+batches made only of fillers (added when a sweep pads the number of windows)
+cost nothing, and the loop ends at the first non-finite step. Everything that may differ between runs of a sweep without
 changing the program is data: the activation (its index), the learning rate
 and other hyperparameters (in the optimizer state), the seed (in the key), the
 real window length (front padding), the horizon and the numbers of windows.
