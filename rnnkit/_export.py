@@ -121,10 +121,11 @@ def _missing(v) -> bool:
 def _encode(values) -> bytes:
     """The bytes hashed for one column (or the index); see ``fingerprint``."""
     dtype = getattr(values, "dtype", None)
-    if ptypes.is_bool_dtype(dtype) or (ptypes.is_numeric_dtype(dtype) and not ptypes.is_complex_dtype(dtype)):
-        v = np.asarray(pd.Series(values).to_numpy(dtype=np.float64, na_value=np.nan), dtype="<f8")  # (R,)
+    number = ptypes.is_numeric_dtype(dtype) and not ptypes.is_complex_dtype(dtype)
+    if ptypes.is_bool_dtype(dtype) or number:
+        v = pd.Series(values).to_numpy(dtype=np.float64, na_value=np.nan)  # (R,)
         v = np.where(np.isnan(v), np.float64(np.nan), v)  # one NaN bit pattern
-        return b"f8\n" + v.tobytes()
+        return b"f8\n" + v.astype("<f8").tobytes()
     if ptypes.is_datetime64_any_dtype(dtype):
         idx = pd.DatetimeIndex(values)
         if idx.tz is not None:
@@ -281,10 +282,11 @@ def read_document(source) -> dict:
             with open(source, encoding="utf-8") as f:
                 doc = json.load(f, parse_constant=_no_constant)
         except json.JSONDecodeError as e:
-            raise ValueError(f"{where}: not JSON ({e}); give a file written by rnnkit.save_config") from None
+            raise ValueError(f"{where}: not JSON ({e}); give a file written by "
+                             "rnnkit.save_config") from None
     else:
         raise TypeError(f"`path` must be a file path or a dict, got {type(source).__name__}")
-    if isinstance(doc, dict) and "format" not in doc and "version" not in doc:
+    if isinstance(doc, dict) and not {"format", "version", "config"} & set(doc):
         validate(doc, part="config", where=where)
         return {"format": FORMAT, "version": VERSION, "config": doc}
     validate(doc, where=where)
@@ -305,7 +307,8 @@ def save_config(config: Config, path, **extra) -> Path:
     allowed = ("metric", "metrics", "data", "notes")
     unknown = sorted(set(extra) - set(allowed))
     if unknown:
-        raise TypeError(f"save_config got unknown part(s) {unknown}; the optional parts are {list(allowed)}")
+        raise TypeError(f"save_config got unknown part(s) {unknown}; the optional parts are "
+                        f"{list(allowed)}")
     return write_document(document(config, **extra), path)
 
 
@@ -323,7 +326,8 @@ def load_config(path, *, df: Optional[pd.DataFrame] = None) -> Config:
     try:
         config = Config.from_dict(doc["config"])
     except (TypeError, ValueError) as e:
-        raise ValueError(f"{path if not isinstance(path, dict) else 'document'}: $.config: {e}") from None
+        where = "document" if isinstance(path, dict) else path
+        raise ValueError(f"{where}: $.config: {e}") from None
     if df is not None and "data" in doc:
         check_fingerprint(df, doc)
     return config
@@ -345,8 +349,10 @@ def check_fingerprint(df: pd.DataFrame, source) -> bool:
     config = Config.from_dict(doc["config"])
     now, then = fingerprint(df, config), doc["data"]["fingerprint"]
     if now != then:
-        warnings.warn(f"the frame's fingerprint {now[:19]}... differs from the document's {then[:19]}... "
-                      f"(columns {doc['data']['columns']}, {doc['data']['rows']} rows then, {len(df)} now): "
+        data = doc["data"]
+        warnings.warn(f"the frame's fingerprint {now[:19]}... differs from the document's "
+                      f"{then[:19]}... (columns {data['columns']}, {data['rows']} rows then, "
+                      f"{len(df)} now): "
                       "results may not reproduce; pass the frame the document was made from",
                       FingerprintWarning, stacklevel=2)
         return False

@@ -30,7 +30,8 @@ def _check_range(name: str, r: dict) -> dict:
     unknown = sorted(set(r) - _RANGE_KEYS)
     if unknown or "low" not in r or "high" not in r:
         raise ValueError(f"space[{name!r}] (={r!r}) is not a range: a range has keys 'low', 'high' "
-                         "and optionally 'log' and 'int', e.g. {'low': 1e-4, 'high': 1e-1, 'log': True}")
+                         "and optionally 'log' and 'int', e.g. "
+                         "{'low': 1e-4, 'high': 1e-1, 'log': True}")
     lo, hi, log, whole = _plain(r["low"]), _plain(r["high"]), r.get("log", False), r.get("int", False)
     for k, v in (("low", lo), ("high", hi)):
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
@@ -42,7 +43,8 @@ def _check_range(name: str, r: dict) -> dict:
     if log and lo <= 0:
         raise ValueError(f"space[{name!r}]: a log range needs 'low' > 0 (got {lo!r})")
     if whole and (lo != int(lo) or hi != int(hi)):
-        raise ValueError(f"space[{name!r}]: an int range needs whole 'low' and 'high' (got {lo!r}, {hi!r})")
+        raise ValueError(f"space[{name!r}]: an int range needs whole 'low' and 'high' "
+                         f"(got {lo!r}, {hi!r})")
     return {"low": lo, "high": hi, "log": log, "int": whole}
 
 

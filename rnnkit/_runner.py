@@ -93,7 +93,8 @@ def flat_metrics(metrics: pd.DataFrame) -> Dict[str, float]:
     return out
 
 
-def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: Optional[bool] = None) -> dict:
+def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
+            x64: Optional[bool] = None) -> dict:
     """Fit one Config and return its outcome; a DataError becomes a "failed" outcome.
 
     Args:
@@ -118,7 +119,8 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: Optio
             "metrics": flat_metrics(res.metrics), "message": ""}
 
 
-def remote_run(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: bool, parent: int) -> dict:
+def remote_run(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: bool,
+               parent: int) -> dict:
     """``run_one`` as a task for another process (a pool worker or a Dask worker).
 
     In a process other than the sweep's own, WORKER_ENV is added to the
@@ -263,7 +265,7 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
 
 
 def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> None:
-    """Submit runs to a pool (ours, spawned here) or the caller's executor; store results as they come."""
+    """Submit runs to a pool (ours) or the caller's executor; store each result as it comes."""
     own = executor is None
     pool = process_pool(workers) if own else executor
     limit = workers if (own or workers > 1) else max(len(tasks), 1)

@@ -48,6 +48,10 @@ def run_key(config: Config, fingerprint: str) -> str:
     return hashlib.sha256(blob.encode("utf-8")).hexdigest()
 
 
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
 def _json_number(v):
     if v is None:
         return None
@@ -106,7 +110,7 @@ class RunStore:
                int(record["compiles"]),
                json.dumps({k: _json_number(v) for k, v in record["metrics"].items()}, allow_nan=False),
                str(record.get("message") or ""),
-               record.get("finished") or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"))
+               record.get("finished") or _now())
         with self._lock, self._db:  # the with-block commits before returning
             self._db.execute(f"INSERT OR REPLACE INTO runs ({', '.join(FIELDS)}) "
                              f"VALUES ({', '.join('?' * len(FIELDS))})", row)
@@ -136,7 +140,8 @@ class RunStore:
         return [self._record(r) for r in rows]
 
     def table(self) -> pd.DataFrame:
-        """Every stored run as a DataFrame: config fields, status, epochs, seconds, compiles, metrics."""
+        """Every stored run as a DataFrame: config fields, status, epochs, seconds, compiles,
+        metrics."""
         rows = []
         for r in self.records():
             row = dict(r["config"])

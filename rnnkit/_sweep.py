@@ -41,9 +41,11 @@ def _check_metric(metric: Optional[str], task: str) -> str:
     if metric is None:
         return DEFAULT_METRIC[task]
     names = "|".join(METRICS[task])
-    if not isinstance(metric, str) or not re.fullmatch(rf"(?:[a-z0-9_]+_)?(?:val|test)_(?:{names})", metric):
-        raise ValueError(f"`metric` (={metric!r}) is not a {task} score; use '<split>_<metric>' with split "
-                         f"val or test and metric one of {METRICS[task]} (e.g. {DEFAULT_METRIC[task]!r}), "
+    pattern = rf"(?:[a-z0-9_]+_)?(?:val|test)_(?:{names})"
+    if not isinstance(metric, str) or not re.fullmatch(pattern, metric):
+        raise ValueError(f"`metric` (={metric!r}) is not a {task} score; use '<split>_<metric>' "
+                         f"with split val or test and metric one of {METRICS[task]} "
+                         f"(e.g. {DEFAULT_METRIC[task]!r}), "
                          "or a baseline's score such as 'persistence_val_rmse'")
     return metric
 
@@ -93,7 +95,8 @@ class SweepResult:
             row.update(message=r["message"], key=r["key"])
             rows.append(row)
         own = [k for k in metric_cols if k.startswith(("val_", "test_"))]
-        cols = self.varied + list(RUN_COLUMNS) + own + [k for k in metric_cols if k not in own] + ["message", "key"]
+        others = [k for k in metric_cols if k not in own]
+        cols = self.varied + list(RUN_COLUMNS) + own + others + ["message", "key"]
         self.table = pd.DataFrame(rows, columns=cols)
         for k in metric_cols:
             self.table[k] = self.table[k].astype(np.float64)
