@@ -2,8 +2,7 @@
 
 An activation is a pair: its value phi(a) and its derivative written in terms of
 the *output* h = phi(a). Writing phi' through h lets the backward pass keep only
-the hidden states (no pre-activations) and compute every phi'(a_t) in one
-vectorised operation before the reverse loop.
+the hidden states (no pre-activations).
 
 A cell is a small record of pure functions: ``init(key, n_in, n_hidden, n_out,
 ...) -> params`` and ``step(params, h, x_proj, phi) -> h``. Only the Elman cell

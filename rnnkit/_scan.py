@@ -109,24 +109,25 @@ def _fast_fwd(act, xs, U, V, b, h0, mask):
 def _fast_bwd(act, res, g):
     """Reverse pass. g = dL/dh_t from the outputs, (T, B, H)."""
     xs, U, V, h0, hs, mask = res
-    # 1. phi'(a_t) for every step at once, written through h_t.
-    d = get_activation(act).grad_from_output(hs)  # (T, B, H)
+    # 1. The reverse loop. phi'(a_t) is taken from h_t inside the body, where XLA fuses it
+    #    with the multiply: measured faster than a separate (T, B, H) pass before the loop.
+    dphi = get_activation(act).grad_from_output
     Vt = V.T
     if mask is None:
         def step(carry, inp):
-            g_t, d_t = inp
-            da = (g_t + carry) * d_t  # (B, H) dL/da_t
+            g_t, h_t = inp
+            da = (g_t + carry) * dphi(h_t)  # (B, H) dL/da_t
             return da @ Vt, da  # carry: dA_t V^T = dL/dh_{t-1} through the recurrence
-        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, d), reverse=True)
+        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, hs), reverse=True)
     else:
-        d = jnp.where(mask, d, jnp.zeros_like(d))  # padded steps: no pre-activation
         def step(carry, inp):
-            g_t, d_t, m_t = inp
+            g_t, h_t, m_t = inp
             gh = g_t + carry  # (B, H) dL/dh_t
-            da = gh * d_t
-            # a padded step passes dL/dh_t unchanged to h_{t-1} (h_t = h_{t-1})
-            return da @ Vt + jnp.where(m_t, jnp.zeros_like(gh), gh), da
-        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, d, mask), reverse=True)
+            zero = jnp.zeros_like(gh)
+            da = jnp.where(m_t, gh * dphi(h_t), zero)  # a padded step has no pre-activation
+            # ... and passes dL/dh_t unchanged to h_{t-1}, since h_t = h_{t-1} there
+            return da @ Vt + jnp.where(m_t, zero, gh), da
+        dh0, da = lax.scan(step, jnp.zeros_like(h0), (g, hs, mask), reverse=True)
     # 2. The parameter gradients as single products over all T*B rows.
     h_prev = jnp.concatenate([h0[None], hs[:-1]], axis=0)  # (T, B, H)
     dV = _tb_product(h_prev, da)  # (H, H)
