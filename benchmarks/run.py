@@ -224,7 +224,9 @@ def _evidence(parts: dict) -> list:
         s, p = sweep["serial"], sweep["parallel"]
         c = s["compile"]
         if "sweep.compile_share" in missed:
-            lines.append(f"- Sweep compile share: {c['seconds']:.1f} s of {s['wall_seconds']:.1f} s "
+            lines.append(f"- Sweep compile share: {c['seconds']:.1f} s of {s['wall_seconds']:.1f} s wall; "
+                         f"in CPU time {c['cpu_seconds']:.1f} s of {s['cpu_seconds']:.1f} s "
+                         f"({100 * sweep['compile_share_cpu']:.0f}%) "
                          f"(trace {c['by_phase']['trace']:.1f}, lowering {c['by_phase']['lower']:.1f}, "
                          f"XLA {c['by_phase']['xla_compile']:.1f}); {c['backend_compiles']} XLA compiles; "
                          f"costliest: {c['by_function']}.")
@@ -242,7 +244,8 @@ def _evidence(parts: dict) -> list:
             r = lat["cold"] if key == "cold" else lat["warm"][0]
             w = r["breakdown"]["wall"]
             lines.append(f"- {key.capitalize()} fit {r['seconds']:.2f} s wall, {r['cpu_seconds']:.2f} s CPU "
-                         f"(all threads), {r['compile_seconds']:.2f} s compiling; {r['epochs']} epochs "
+                         f"(all threads), {r['compile_seconds']:.2f} s compiling "
+                         f"({r['compile_cpu_seconds']:.2f} s CPU); {r['epochs']} epochs "
                          f"({w.get('training_epochs', 0):.2f} s; first {r['first_epoch_seconds']:.2f} s, "
                          f"then {r['later_epoch_median_seconds']} s each); phases {w}; compile by phase "
                          f"{r['breakdown']['compile']}.")
@@ -319,16 +322,19 @@ def _sweep_section(part: dict) -> list:
     out += [f"Grid {st['space']} ({st['runs']} runs, 1 seed) on `cold_storage_load(years={st['years']})` "
             f"({st['rows']} hourly rows), {st['epochs_per_run']} epochs per run with patience off "
             "(every run does the same work). Each sweep in a fresh process with a fresh SQLite store.", ""]
-    out += _table([("1 (in-process)", s["wall_seconds"], s["run_seconds_sum"], s["training_programs"],
-                    s["programs_traced_here"], s["compile"]["seconds"], s["statuses"]),
-                   ("2 (spawned processes)", p["wall_seconds"], p["run_seconds_sum"], p["training_programs"],
-                    "-", "-", p["statuses"])],
-                  ("workers", "wall s", "sum of run s", "training programs (table)",
+    out += _table([("1 (in-process)", s["wall_seconds"], s["cpu_seconds"], s["run_seconds_sum"],
+                    s["training_programs"], s["programs_traced_here"],
+                    f"{s['compile']['seconds']} ({s['compile']['cpu_seconds']} CPU)", s["statuses"]),
+                   ("2 (spawned processes)", p["wall_seconds"],
+                    f"{p['cpu_seconds']} + workers {p['worker_cpu_seconds']}", p["run_seconds_sum"],
+                    p["training_programs"], "-", "-", p["statuses"])],
+                  ("workers", "wall s", "CPU s", "sum of run s", "training programs (table)",
                    "programs traced (compile_count)", "compile s (jax.monitoring)", "statuses"))
     c = s["compile"]
     out += ["", f"Serial sweep compile time by phase: {c['by_phase']}; XLA compiles {c['backend_compiles']}; "
             f"costliest functions: {c['by_function']}.",
-            f"Speed-up {part['speedup']:.2f}x; compile share {100 * part['compile_share']:.1f}%."]
+            f"Speed-up {part['speedup']:.2f}x; compile share {100 * part['compile_share']:.1f}% of wall "
+            f"time, {100 * part['compile_share_cpu']:.1f}% of CPU time."]
     return out
 
 
@@ -341,11 +347,10 @@ def _latency_section(part: dict) -> list:
             f"progress=False)` on {part['rows']} rows. Imports {part['import_seconds']} s and demo data "
             f"{part['data_seconds']} s are not counted.", ""]
     phases = list(c["breakdown"]["wall"])
-    rows = [("cold", c["seconds"], c["cpu_seconds"], c["compile_seconds"], c["epochs"])
-            + tuple(c["breakdown"]["wall"].get(k, "") for k in phases)]
-    rows += [(f"warm {i + 1}", r["seconds"], r["cpu_seconds"], r["compile_seconds"], r["epochs"])
-             + tuple(r["breakdown"]["wall"].get(k, "") for k in phases) for i, r in enumerate(w)]
-    out += _table(rows, ("fit", "wall s", "CPU s", "compile s", "epochs") + tuple(phases))
+    rows = [(name, r["seconds"], r["cpu_seconds"], r["compile_seconds"], r["compile_cpu_seconds"], r["epochs"])
+            + tuple(r["breakdown"]["wall"].get(k, "") for k in phases)
+            for name, r in [("cold", c)] + [(f"warm {i + 1}", x) for i, x in enumerate(w)]]
+    out += _table(rows, ("fit", "wall s", "CPU s", "compile s", "compile CPU s", "epochs") + tuple(phases))
     out += ["", f"Cold compile seconds by phase of fit: {c['breakdown']['compile']}.",
             f"Cold compile detail: {c['compile_detail']}.",
             f"Diagnostics (lazy, not part of fit), first use: {part['diagnostics_first_use']}."]
