@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from . import reference
-from ._model import loss as _jax_loss
+from ._model import _resolve_activation, loss as _jax_loss
 
 _NAMES = ("U", "V", "b", "W", "c")
 
@@ -50,6 +50,9 @@ def check_gradients(params, xs, ys, *, eps: float = 1e-6, **model_kw) -> pd.Data
     if not isinstance(params, dict) or any(k not in params for k in _NAMES):
         raise ValueError(f"`params` must be a dict with keys {list(_NAMES)} "
                          "(make them with rnnkit.init_params)")
+    if "activation" in model_kw and not isinstance(model_kw["activation"], str):
+        # an index (as the training loop passes it) becomes its name for the NumPy reference
+        model_kw["activation"] = _resolve_activation(model_kw["activation"])
     p64 = {k: np.asarray(params[k], dtype=np.float64) for k in _NAMES}
     xs64 = np.asarray(xs, dtype=np.float64)
     ys_np = np.asarray(ys)
