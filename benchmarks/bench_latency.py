@@ -95,6 +95,7 @@ def _one_fit(rnnkit, df, config, phases):
     seconds = time.perf_counter() - t0
     cpu = time.process_time() - cpu0  # all threads; beside wall time it shows how shared the CPU was
     epochs = res.history["seconds"].to_numpy()
+    steps = -(-len(res.prepared.starts["train"]) // res.config.batch_size)  # minibatches per epoch
     breakdown = phases.table()
     breakdown["wall"]["training_epochs"] = round(float(epochs.sum()), 3)
     breakdown["wall"]["train_other"] = round(breakdown["wall"].get("train", 0.0) - float(epochs.sum()), 3)
@@ -102,6 +103,7 @@ def _one_fit(rnnkit, df, config, phases):
                  "compile_seconds": round(phases.clock.seconds - c0, 3),
                  "compile_cpu_seconds": round(phases.clock.cpu_seconds - cc0, 3),
                  "epochs": int(len(epochs)), "status": res.status, "training_programs": res.compiles,
+                 "steps_per_epoch": steps, "val_windows": int(len(res.prepared.starts["val"])),
                  "first_epoch_seconds": round(float(epochs[0]), 3),
                  "later_epoch_median_seconds": round(float(statistics.median(epochs[1:])), 4)
                  if len(epochs) > 1 else None,

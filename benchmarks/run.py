@@ -246,12 +246,19 @@ def _evidence(parts: dict) -> list:
             lines.append(f"- {key.capitalize()} fit {r['seconds']:.2f} s wall, {r['cpu_seconds']:.2f} s CPU "
                          f"(all threads), {r['compile_seconds']:.2f} s compiling "
                          f"({r['compile_cpu_seconds']:.2f} s CPU); {r['epochs']} epochs "
-                         f"({w.get('training_epochs', 0):.2f} s; first {r['first_epoch_seconds']:.2f} s, "
-                         f"then {r['later_epoch_median_seconds']} s each); phases {w}; compile by phase "
+                         f"({w.get('training_epochs', 0):.2f} s; first {r['first_epoch_seconds']:.2f} s, compile included, "
+                         f"then {r['later_epoch_median_seconds']} s each: {r['steps_per_epoch']} minibatch steps "
+                         f"and {r['val_windows']} validation windows, "
+                         f"{_ms_per_step(r)} ms per step with validation); phases {w}; compile by phase "
                          f"{r['breakdown']['compile']}.")
         if "latency.cold_fit" in missed:
             lines.append(f"- Cold compile detail: {lat['cold']['compile_detail']}.")
     return lines
+
+
+def _ms_per_step(r: dict) -> str:
+    later = r.get("later_epoch_median_seconds")
+    return f"{1e3 * later / r['steps_per_epoch']:.2f}" if later else "?"
 
 
 def render(summary: dict) -> str:
