@@ -13,6 +13,8 @@ import math
 from dataclasses import dataclass, field, fields
 from typing import Any, Optional, Tuple, Union
 
+import numpy as np
+
 TASKS = ("regression", "classification")
 MODES = ("many-to-one", "many-to-many")
 SCALES = ("standard", "minmax", "none")
@@ -68,6 +70,12 @@ class Config:
     dtype: str = "float32"  # "float32" or "float64"
 
     def __post_init__(self):
+        # numpy scalars and arrays (from np.arange, a sweep table) become plain Python values,
+        # so that np.int64(5) is the whole number 5 and the config stays JSON-ready.
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if isinstance(v, (np.generic, np.ndarray)):
+                object.__setattr__(self, f.name, v.tolist())
         # Normalise list-likes to tuples so that the config stays hashable.
         for name in ("target", "features"):
             v = getattr(self, name)
