@@ -38,6 +38,11 @@ def _button(description, style, icon, name, tooltip):
     return b
 
 
+def _hint(text):
+    return widgets.HTML(f"<div style='color:#777;font-size:11px;margin:0 0 4px 100px;"
+                        f"line-height:1.3'>{html.escape(text)}</div>")
+
+
 def _section(title, children):
     head = widgets.HTML(f"<div style='font-weight:600;color:#555;margin:6px 0 2px'>{title}</div>")
     return [head, *children]
@@ -102,7 +107,9 @@ class Panel:
     def _layout(self, df):
         c = self.controls
         pages = {
-            "Data": _section("what to predict", [c["target"], c["features"], c["task"], c["mode"]])
+            "Data": _section("what to predict", [c["target"], c["features"], _hint(
+                "inputs: none picked = every other numeric column; ctrl-click picks several"),
+                c["task"], c["mode"]])
             + _section("rows", [c["time_column"], c["group_column"], c["missing"]]),
             "Model": _section("network", [widgets.HBox([c["window"], c["window_full"]]),
                                           c["horizon"], c["hidden"], c["activation"], c["init"]])

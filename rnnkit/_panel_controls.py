@@ -14,7 +14,7 @@ import pandas as pd
 from ._config import ACTIVATIONS, INITS, MISSING, MODES, OPTIMIZERS, TASKS, Config
 
 _LABEL = {"description_width": "96px"}
-_WIDE = dict(width="100%")
+_WIDE = dict(width="auto")  # fill the column, margins included (100% would overflow it)
 
 
 def _style(w: widgets.Widget, name: str) -> widgets.Widget:
@@ -33,9 +33,22 @@ def _int(description, value, lo, hi, name):
                                          style=_LABEL, layout=widgets.Layout(**_WIDE)), name)
 
 
+# The "no column" choice of a dropdown. Not None: a Dropdown shows None as a
+# blank box (no selection). Config refuses "" as a column name, so it is free.
+NONE = ""
+
+
+def _shown(v):
+    return NONE if v is None else v
+
+
+def _meant(v):
+    return None if v == NONE else v
+
+
 def _column_options(names, none_label, current):
-    """(label, value) pairs for a column dropdown; ``None`` stands for `none_label`."""
-    opts = [(none_label, None)] + [(c, c) for c in names]
+    """(label, value) pairs for a column dropdown; ``NONE`` stands for `none_label`."""
+    opts = [(none_label, NONE)] + [(c, c) for c in names]
     if isinstance(current, tuple) and len(current) > 1:
         opts.append((", ".join(current), current))  # several targets: offered as one choice
     elif isinstance(current, tuple):
@@ -60,16 +73,17 @@ def build_controls(df: pd.DataFrame, config: Config) -> dict:
     names = [c for c in df.columns if isinstance(c, str)]
     c = {}
     # --- data ---
-    c["target"] = _dropdown("target", _column_options(names, "(first numeric)", None), None, "target")
+    c["target"] = _dropdown("target", _column_options(names, "(first numeric)", None), NONE,
+                            "target")
     c["features"] = _style(widgets.SelectMultiple(
         description="inputs", options=names, rows=min(5, max(2, len(names))),
         style=_LABEL, layout=widgets.Layout(**_WIDE)), "features")
     c["task"] = _dropdown("task", TASKS, config.task, "task")
     c["mode"] = _dropdown("loss at", MODES, config.mode, "mode")
-    c["time_column"] = _dropdown("time column", _column_options(names, "(index)", None), None,
+    c["time_column"] = _dropdown("time column", _column_options(names, "(index)", None), NONE,
                                  "time_column")
     c["group_column"] = _dropdown("sequence id", _column_options(names, "(one series)", None),
-                                  None, "group_column")
+                                  NONE, "group_column")
     c["missing"] = _dropdown("gaps (NaN)", MISSING, config.missing, "missing")
     # The time column only matters when the index does not carry time already.
     if isinstance(df.index, pd.DatetimeIndex) and config.time_column is None:
@@ -117,14 +131,14 @@ def write_config(c: dict, config: Config) -> None:
     """Set every control that mirrors a Config field to the value in `config`."""
     names = list(c["features"].options)  # the frame's column names
     c["target"].options = _column_options(names, "(first numeric)", config.target)
-    c["target"].value = config.target if not (isinstance(config.target, tuple)
-                                              and len(config.target) == 1) else config.target[0]
+    one = isinstance(config.target, tuple) and len(config.target) == 1
+    c["target"].value = config.target[0] if one else _shown(config.target)
     c["features"].value = tuple(f for f in (config.features or ()) if f in c["features"].options)
     for field in ("time_column", "group_column"):
         cur = getattr(config, field)
         none_label = c[field].options[0][0]
         c[field].options = _column_options(names, none_label, cur)
-        c[field].value = cur
+        c[field].value = _shown(cur)
     if config.time_column is not None:
         c["time_column"].layout.display = None
     for field in ("task", "mode", "missing", "activation", "init", "optimizer",
@@ -146,9 +160,9 @@ def read_config(c: dict, base: Config) -> Config:
     features = tuple(c["features"].value) or None
     window = "full" if c["window_full"].value else int(c["window"].value)
     return base.replace(
-        target=c["target"].value, features=features, task=c["task"].value,
-        mode=c["mode"].value, time_column=c["time_column"].value,
-        group_column=c["group_column"].value, missing=c["missing"].value,
+        target=_meant(c["target"].value), features=features, task=c["task"].value,
+        mode=c["mode"].value, time_column=_meant(c["time_column"].value),
+        group_column=_meant(c["group_column"].value), missing=c["missing"].value,
         window=window, horizon=int(c["horizon"].value), hidden=int(c["hidden"].value),
         activation=c["activation"].value, init=c["init"].value,
         optimizer=c["optimizer"].value, lr=read_lr(c["lr"], base.lr),

@@ -22,6 +22,18 @@ from ._panel_data import (baseline_series, forecast_frame, gradient_factor, grad
                           headline, loss_planes, score_column, sweep_headline, window_times)
 
 DPI = 100
+# Figure sizes in inches: one figure across the page, or two side by side.
+WIDE = (7.6, 3.6)
+HALF = (4.7, 3.5)
+SIZES = {"training": WIDE, "forecast": WIDE, "gradient": HALF, "spectrum": HALF,
+         "heatmap": HALF, "path": HALF, "surface": HALF, "slice": HALF, "sweep": (6.4, 4.0),
+         "scores": (7.0, 2.9)}
+
+
+def sized(name: str, builder: Callable[..., Figure], *args, **kwargs) -> Figure:
+    """``builder(*args, **kwargs)`` drawn into a fresh Figure of the page's size for `name`."""
+    fig = Figure(figsize=SIZES[name], layout="constrained")
+    return builder(*args, ax=fig.add_subplot(), **kwargs)
 
 
 def render(fig: Figure) -> bytes:
@@ -32,9 +44,14 @@ def render(fig: Figure) -> bytes:
     return buf.getvalue()
 
 
+def png_width(png: bytes) -> int:
+    """Pixel width of PNG bytes (the IHDR chunk's first field)."""
+    return int.from_bytes(bytes(png[16:20]), "big")
+
+
 def _image(name: str) -> widgets.Image:
-    img = widgets.Image(format="png", layout=widgets.Layout(width="100%", max_width="760px",
-                                                             height="auto", display="none"))
+    img = widgets.Image(format="png", layout=widgets.Layout(width="100%", height="auto",
+                                                             display="none"))
     img.add_class("rnnkit-fig-" + name)
     return img
 
@@ -43,19 +60,37 @@ def _note(text: str) -> widgets.HTML:
     return widgets.HTML(f"<div style='color:#777;margin:4px 0'>{html.escape(text)}</div>")
 
 
+def _cell(v) -> str:
+    if isinstance(v, (float, np.floating)):
+        return "" if np.isnan(v) else f"{v:.4g}"
+    return html.escape(str(v))
+
+
 def _table_html(df: pd.DataFrame, caption: str) -> str:
-    """A compact HTML table: numbers to 4 significant digits, the caption above."""
-    body = df.to_html(float_format=lambda v: f"{v:.4g}", na_rep="", border=0, escape=True,
-                      classes="rnnkit-table")
-    return (f"<div style='font-weight:600;margin:6px 0 4px'>{html.escape(caption)}</div>"
-            "<div style='overflow-x:auto;font-size:12px'>"
-            "<style>.rnnkit-table td,.rnnkit-table th{padding:2px 8px;text-align:right}"
-            ".rnnkit-table tr:nth-child(even){background:#f4f6f8}</style>" + body + "</div>")
+    """A compact HTML table (index as the first column, numbers to 4 significant digits).
+
+    Inline styles only, so that it looks the same in JupyterLab, classic
+    notebooks and exported HTML.
+    """
+    pad = "padding:2px 10px;border:none;"
+    head = "".join(f"<th style='{pad}text-align:right;border-bottom:1px solid #bbb'>"
+                   f"{html.escape(str(c))}</th>" for c in [df.index.name or ""] + list(df.columns))
+    rows = []
+    for k, (label, row) in enumerate(df.iterrows()):
+        bg = "#f3f5f7" if k % 2 else "white"
+        cells = "".join(f"<td style='{pad}text-align:right'>{_cell(v)}</td>" for v in row)
+        rows.append(f"<tr style='background:{bg}'><td style='{pad}text-align:left;font-weight:600'>"
+                    f"{_cell(label)}</td>{cells}</tr>")
+    return (f"<div style='font-weight:600;margin:8px 0 4px'>{html.escape(caption)}</div>"
+            "<div style='overflow-x:auto'><table style='border-collapse:collapse;font-size:12px;"
+            f"line-height:1.5'><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody>"
+            "</table></div>")
 
 
 def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
     a.layout.width = b.layout.width = "50%"
-    return widgets.HBox([a, b], layout=widgets.Layout(width="100%"))
+    # flex-start: images keep their own aspect instead of stretching to the taller one.
+    return widgets.HBox([a, b], layout=widgets.Layout(width="100%", align_items="flex-start"))
 
 
 class FigureViews:
@@ -128,33 +163,44 @@ class FigureViews:
         img = self.images[name]
         img.value = png
         img.layout.display = None if png else "none"
+        if png:  # never scaled up past its own pixels: text keeps its size
+            img.layout.max_width = f"{png_width(png)}px"
 
     def show_fit(self, result) -> None:
         """Draw every page of one FitResult except the loss surfaces (called in the worker thread)."""
         self.result = result
         cfg = result.config
-        self._note("Training", "")
+        self._note("Training", "Loss per epoch in scaled units; the star marks the epoch whose "
+                               "weights are kept; dotted: the gradient norm before clipping.")
         self._draw("Training", "training",
-                   lambda: plots.training_curves(result.history, status=str(result.status)))
+                   lambda: sized("training", plots.training_curves, result.history,
+                                 status=str(result.status)))
 
         pred = forecast_frame(result)
         if cfg.task == "classification":
             self._note("Forecast", "Held-out range: class probabilities, with the actual and the "
                                    "predicted class in the strips above.")
-            self._draw("Forecast", "forecast", lambda: plots.class_forecast(pred))
+            self._draw("Forecast", "forecast", lambda: sized("forecast", plots.class_forecast, pred))
         else:
             base_name, base = baseline_series(result, pred.index)
             self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
                                    f"({base_name}).")
-            self._draw("Forecast", "forecast",
-                       lambda: plots.forecast(pred, baseline=base, baseline_name=base_name))
+            target = ", ".join(result.prepared.target_names)
+
+            def make():
+                fig = sized("forecast", plots.forecast, pred, baseline=base, baseline_name=base_name)
+                fig.axes[0].set_ylabel(target)  # a single target's columns carry no name
+                return fig
+
+            self._draw("Forecast", "forecast", make)
 
         metrics = result.metrics
         self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
         column = score_column(metrics, cfg.task)
-        self._note("Scores", "")
-        self._draw("Scores", "scores", lambda: plots.metrics_bar(metrics, column=column,
-                                                                 highlight="rnn"))
+        self._note("Scores", "Every model scored on the same targets, in the target's own units "
+                             "(MASE: against the in-sample naive forecast).")
+        self._draw("Scores", "scores", lambda: sized("scores", plots.metrics_bar, metrics,
+                                                           column=column, highlight="rnn"))
 
         d = result.diagnostics
         sigma = float(d.singular_values[0])
@@ -162,9 +208,11 @@ class FigureViews:
         self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. Dashed: the "
                                 f"bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
                                 + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
-        self._draw("Gradients", "gradient", lambda: plots.gradient_flow(
-            gradient_norms(d), sigma_max=factor if factor > 0 else None))
-        self._draw("Gradients", "spectrum", lambda: plots.spectrum(d.singular_values))
+        self._draw("Gradients", "gradient", lambda: sized(
+            "gradient", plots.gradient_flow, gradient_norms(d),
+            sigma_max=factor if factor > 0 else None))
+        self._draw("Gradients", "spectrum", lambda: sized("spectrum", plots.spectrum,
+                                                            d.singular_values))
         self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
 
         n = int(d.val_states.shape[0])
@@ -176,7 +224,8 @@ class FigureViews:
         self.window_slider.max = max(n - 1, 0)
         self._quiet = False
         self._draw_window(0)
-        self._draw("States", "path", lambda: plots.hidden_path(d.val_states, times=d.val_times))
+        self._draw("States", "path", lambda: sized("path", plots.hidden_path, d.val_states,
+                                                    times=d.val_times))
         self.set_image("surface", b"")
         self.set_image("slice", b"")
         self._note("Surface", "Drawing...")
@@ -187,8 +236,9 @@ class FigureViews:
         self._note("Surface", "Left: validation loss on a random plane through the trained "
                                    "weights, filter-normalised (Li et al. 2018). Right: along a "
                                    "random direction in V only.")
-        self._draw("Surface", "surface", lambda: plots.loss_surface(a, b, surface))
-        self._draw("Surface", "slice", lambda: plots.loss_slice(s, values, label="V"))
+        self._draw("Surface", "surface", lambda: sized("surface", plots.loss_surface, a, b, surface))
+        self._draw("Surface", "slice", lambda: sized("slice", plots.loss_slice, s, values,
+                                                                label="V"))
 
     def _note(self, page: str, text: str) -> None:
         self.notes[page].value = (f"<div style='color:#555;margin:2px 0 6px'>{html.escape(text)}</div>"
@@ -199,7 +249,8 @@ class FigureViews:
 
         def make():
             states = r.diagnostics.window_states(int(i))  # (T, H)
-            return plots.hidden_heatmap(states, times=window_times(r, int(i), len(states)))
+            return sized("heatmap", plots.hidden_heatmap, states,
+                         times=window_times(r, int(i), len(states)))
 
         self._draw("States", "heatmap", make)
 
@@ -221,10 +272,14 @@ class FigureViews:
         self.sweep_x.value, self.sweep_y.value = x, y
         self._quiet = False
         self._draw_sweep()
-        summary = result.summary()
+        summary = result.summary().set_index("rank")
+        m = result.metric
+        keep = list(result.varied) + ["runs", m, f"{m}_std", "seed_spread",
+                                      m.replace("val_", "test_", 1), "diverged", "failed"]
+        keep = list(dict.fromkeys(c for c in keep if c in summary.columns))
         self.sweep_table.value = _table_html(
-            summary.set_index("rank"), f"runs by setting, ranked by {result.metric} "
-                                       "(mean over seeds; seed_spread = max - min)")
+            summary[keep], f"settings ranked by {m}: mean over seeds, its standard deviation "
+                           "and seed_spread (max - min over seeds)")
         self._note("Sweep", f"{len(result.table)} runs; {result.missing} not run." if result.missing
                    else f"{len(result.table)} runs.")
         self.select("Sweep")
@@ -235,7 +290,8 @@ class FigureViews:
         if x == y:
             self._note("Sweep", "Pick two different settings for the two axes.")
             return
-        self._draw("Sweep", "sweep", lambda: plots.sweep_surface(r.table, x, y, metric=r.metric))
+        self._draw("Sweep", "sweep", lambda: sized("sweep", plots.sweep_surface, r.table, x, y,
+                                                          metric=r.metric))
 
     def _on_axes(self, change) -> None:
         if not self._quiet and self.sweep_result is not None:

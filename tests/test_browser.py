@@ -142,13 +142,18 @@ def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
             width = img.evaluate("el => el.complete ? el.naturalWidth : 0")
             assert width > 200, "the training-curve PNG did not load in the page"
 
+            # The job ends after the loss surface is drawn; then the README screenshot.
+            page.locator(".rnnkit-panel .widget-label", has_text="done:").wait_for(timeout=240_000)
+            page.locator(".rnnkit-pages .lm-TabBar-tab", has_text="Forecast").click()
+            page.locator("img.rnnkit-fig-forecast").wait_for(state="visible", timeout=30_000)
+            page.wait_for_timeout(500)  # let the tab switch paint
+            _save_png_atomically(panel.screenshot(), SCREENSHOT)
+
             page.locator(".rnnkit-path input").fill(str(export_path))
             page.locator(".rnnkit-path input").press("Tab")
             page.locator("button.rnnkit-export").click()
             status.get_by_text("Wrote the current settings").wait_for(timeout=30_000)
             assert page.locator(".rnnkit-document").inner_text().count('"epochs": 4') == 1
-
-            _save_png_atomically(panel.screenshot(), SCREENSHOT)
         finally:
             browser.close()
 

@@ -17,7 +17,7 @@ import pytest
 import rnnkit
 from rnnkit import plots
 from rnnkit._panel import Panel
-from rnnkit._panel_views import render
+from rnnkit._panel_views import render, sized
 
 WAIT = 600  # seconds; a generous bound for a few jit compiles on a busy 2-core machine
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
@@ -93,10 +93,12 @@ def test_train_uses_the_controls_and_draws_every_figure(trained):
 def test_figures_show_the_results_series(trained):
     """Each PNG equals the plots builder drawn on the result's own data (rendering is deterministic)."""
     r, im = trained.result, trained.views.images
-    assert im["training"].value == render(plots.training_curves(r.history, status=r.status))
+    assert im["training"].value == render(sized("training", plots.training_curves, r.history,
+                                                status=r.status))
     d = r.diagnostics
-    assert im["spectrum"].value == render(plots.spectrum(d.singular_values))
-    assert im["path"].value == render(plots.hidden_path(d.val_states, times=d.val_times))
+    assert im["spectrum"].value == render(sized("spectrum", plots.spectrum, d.singular_values))
+    assert im["path"].value == render(sized("path", plots.hidden_path, d.val_states,
+                                            times=d.val_times))
     # The forecast page shows the test range only, on the frame's own time index.
     from rnnkit._panel_data import forecast_frame
     shown = forecast_frame(r)
@@ -104,7 +106,7 @@ def test_figures_show_the_results_series(trained):
     assert shown.index.isin(trained._df.index).all()
     # The metrics table lists the network and every baseline of result.metrics.
     for model in r.metrics.index:
-        assert f">{model}<" in trained.views.metrics_table.value
+        assert f">{model}</td>" in trained.views.metrics_table.value
 
 
 def test_forecast_baseline_is_the_best_scored_one(trained):
@@ -137,8 +139,8 @@ def test_window_slider_picks_the_heatmap_window(trained):
     assert third != first
     from rnnkit._panel_data import window_times
     states = d.window_states(3)
-    assert third == render(plots.hidden_heatmap(states, times=window_times(trained.result, 3,
-                                                                            len(states))))
+    assert third == render(sized("heatmap", plots.hidden_heatmap, states,
+                                 times=window_times(trained.result, 3, len(states))))
     slider.value = 0
     assert trained.views.images["heatmap"].value == first
 
@@ -263,13 +265,14 @@ def test_sweep_runs_every_combination_and_exports_the_winner(demo, start, tmp_pa
     summary = r.summary()
     assert len(summary) == 4 and "seed_spread" in summary.columns
     assert "seed_spread" in p.views.sweep_table.value
+    assert p.views.sweep_table.value.count("<tr style='background") == 4  # one row per setting
     assert _png_shape(p.views.images["sweep"].value)[1] > 300
     # Another pair of axes redraws the surface.
     before = p.views.images["sweep"].value
     p.views.sweep_y.value = "activation"
     assert p.views.images["sweep"].value != before
     assert p.views.images["sweep"].value == render(
-        plots.sweep_surface(t, "window", "activation", metric=r.metric))
+        sized("sweep", plots.sweep_surface, t, "window", "activation", metric=r.metric))
 
     path = tmp_path / "best.json"
     c["path"].value = str(path)
