@@ -53,11 +53,19 @@ def require_column(df: pd.DataFrame, name: str, field: str) -> None:
 
 def _not_numeric(s: pd.Series) -> str:
     """Say why a column is not numbers: its first non-number, or that it is numbers stored as text."""
+    if not (ptypes.is_object_dtype(s.dtype) or ptypes.is_string_dtype(s.dtype)):
+        # complex, datetime, timedelta, interval...: a kind of value, not text to parse
+        return f"dtype {s.dtype} is not a real number type, such as {s.iloc[0]!r}"
     bad = (pd.to_numeric(s, errors="coerce").isna() & s.notna()).to_numpy()
     if bad.any():
         pos = int(np.argmax(bad))
         return f"dtype {s.dtype}; first non-number {s.iloc[pos]!r} at row {s.index[pos]!r}"
-    return f"dtype {s.dtype}: numbers stored as text, such as {s.iloc[0]!r}; pd.to_numeric converts them"
+    present = s.dropna()
+    if len(present) == 0:
+        return f"dtype {s.dtype} and no value at all"
+    first = present.iloc[0]
+    kind = "text" if isinstance(first, str) else "Python objects"
+    return f"dtype {s.dtype}: numbers stored as {kind}, such as {first!r}; pd.to_numeric converts them"
 
 
 def _is_number_column(s: pd.Series) -> bool:
