@@ -243,14 +243,14 @@ def _evidence(parts: dict) -> list:
                 continue
             r = lat["cold"] if key == "cold" else lat["warm"][0]
             w = r["breakdown"]["wall"]
-            lines.append(f"- {key.capitalize()} fit {r['seconds']:.2f} s wall, {r['cpu_seconds']:.2f} s CPU "
-                         f"(all threads), {r['compile_seconds']:.2f} s compiling "
-                         f"({r['compile_cpu_seconds']:.2f} s CPU); {r['epochs']} epochs "
-                         f"({w.get('training_epochs', 0):.2f} s; first {r['first_epoch_seconds']:.2f} s, compile included, "
-                         f"then {r['later_epoch_median_seconds']} s each: {r['steps_per_epoch']} minibatch steps "
-                         f"and {r['val_windows']} validation windows, "
-                         f"{_ms_per_step(r)} ms per step with validation); phases {w}; compile by phase "
-                         f"{r['breakdown']['compile']}.")
+            lines.append(
+                f"- {key.capitalize()} fit {r['seconds']:.2f} s wall, {r['cpu_seconds']:.2f} s CPU (all "
+                f"threads), {r['compile_seconds']:.2f} s compiling ({r['compile_cpu_seconds']:.2f} s CPU); "
+                f"{r['epochs']} epochs ({w.get('training_epochs', 0):.2f} s; first "
+                f"{r['first_epoch_seconds']:.2f} s, compile included, then "
+                f"{r['later_epoch_median_seconds']} s each: {r['steps_per_epoch']} minibatch steps and "
+                f"{r['val_windows']} validation windows, {_ms_per_step(r)} ms per step with validation); "
+                f"phases {w}; compile by phase {r['breakdown']['compile']}.")
         if "latency.cold_fit" in missed:
             lines.append(f"- Cold compile detail: {lat['cold']['compile_detail']}.")
     return lines
@@ -354,8 +354,8 @@ def _latency_section(part: dict) -> list:
             f"progress=False)` on {part['rows']} rows. Imports {part['import_seconds']} s and demo data "
             f"{part['data_seconds']} s are not counted.", ""]
     phases = list(c["breakdown"]["wall"])
-    rows = [(name, r["seconds"], r["cpu_seconds"], r["compile_seconds"], r["compile_cpu_seconds"], r["epochs"])
-            + tuple(r["breakdown"]["wall"].get(k, "") for k in phases)
+    rows = [(name, r["seconds"], r["cpu_seconds"], r["compile_seconds"], r["compile_cpu_seconds"],
+             r["epochs"]) + tuple(r["breakdown"]["wall"].get(k, "") for k in phases)
             for name, r in [("cold", c)] + [(f"warm {i + 1}", x) for i, x in enumerate(w)]]
     out += _table(rows, ("fit", "wall s", "CPU s", "compile s", "compile CPU s", "epochs") + tuple(phases))
     out += ["", f"Cold compile seconds by phase of fit: {c['breakdown']['compile']}.",
