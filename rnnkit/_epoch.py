@@ -9,8 +9,10 @@ One epoch is ONE program: a shuffle, a ``lax.while_loop`` over the minibatches
 (each one gather + loss + fast BPTT + optax update), then a batched pass for the
 validation loss. A while loop rather than a scan: its trip count is data, so
 batches made only of fillers (added when a sweep pads the number of windows)
-cost nothing, and the loop ends at the first non-finite step. Everything that may differ between runs of a sweep without
-changing the program is data: the activation (its index), the learning rate
+cost nothing, and the loop ends at the first non-finite step.
+
+Everything that may differ between runs of a sweep without changing the
+program is data: the activation (its index), the learning rate
 and other hyperparameters (in the optimizer state), the seed (in the key), the
 real window length (front padding), the horizon and the numbers of windows.
 Programs are cached at module level by what does change them, and every trace
