@@ -15,6 +15,7 @@ from typing import Callable, Dict, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from ._config import ACTIVATIONS, INITS
 
@@ -85,13 +86,16 @@ def init_elman(key, n_in: int, n_hidden: int, n_out: int, *, scheme: str = "glor
     Returns:
       dict U (I, H), V (H, H), b (H,), W (H, O), c (O,); biases are zero.
     """
+    sizes = []
     for name, v in (("n_in", n_in), ("n_hidden", n_hidden), ("n_out", n_out)):
-        if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, np.integer)) or v < 1:
             raise ValueError(f"`{name}` (={v!r}) must be a whole number >= 1")
+        sizes.append(int(v))
+    n_in, n_hidden, n_out = sizes
     if scheme not in INITS:
         raise ValueError(f"`scheme` (={scheme!r}) is unknown; use one of "
                          + ", ".join(repr(s) for s in INITS))
-    if isinstance(recurrent_scale, bool) or not isinstance(recurrent_scale, (int, float)) \
+    if isinstance(recurrent_scale, bool) or not isinstance(recurrent_scale, (int, float, np.number)) \
             or not recurrent_scale > 0:
         raise ValueError(f"`recurrent_scale` (={recurrent_scale!r}) must be a number > 0")
     dtype = jnp.dtype(dtype)

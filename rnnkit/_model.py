@@ -44,6 +44,16 @@ def _is_traced(x) -> bool:
     return isinstance(x, jax.core.Tracer)
 
 
+def _as_array(name, x):
+    """x as a jax array; TypeError naming `name` for anything but numbers and bools."""
+    if isinstance(x, jax.Array):
+        return x
+    a = np.asarray(x)
+    if a.dtype.kind not in "biuf":
+        raise TypeError(f"`{name}` has dtype {a.dtype}; expected numbers (a float or int array)")
+    return jnp.asarray(a)
+
+
 def _float_dtype(arrays):
     """float64 when any input is float64, else float32 (never the default dtype)."""
     return jnp.float64 if any(jnp.asarray(a).dtype == jnp.float64 for a in arrays) else jnp.float32
@@ -56,7 +66,7 @@ def _check_params(params):
     if missing:
         raise ValueError(f"`params` lacks {missing}; it needs U {_PARAM_SHAPES['U']}, V (H, H), "
                          "b (H,), W (H, O), c (O,) (make them with rnnkit.init_params)")
-    p = {k: jnp.asarray(params[k]) for k in _PARAM_SHAPES}
+    p = {k: _as_array(f"params['{k}']", params[k]) for k in _PARAM_SHAPES}
     if p["U"].ndim != 2:
         raise ValueError(f"`params['U']` has shape {p['U'].shape}; expected (I, H)")
     n_in, n_hid = p["U"].shape
@@ -78,7 +88,7 @@ def _prepare(params, xs, mask, h0) -> _Inputs:
     """Check every array argument and bring it to the time-major batched form."""
     p = _check_params(params)
     n_in, n_hid = p["U"].shape
-    xs = jnp.asarray(xs)
+    xs = _as_array("xs", xs)
     if xs.ndim not in (2, 3):
         raise ValueError(f"`xs` has shape {xs.shape}; expected (T, I) or (B, T, I) with I = {n_in}")
     if xs.shape[-1] != n_in:
@@ -87,16 +97,13 @@ def _prepare(params, xs, mask, h0) -> _Inputs:
                          "or make params for this many inputs")
     if xs.shape[-2] < 1:
         raise ValueError(f"`xs` has shape {xs.shape}: no time steps; expected T >= 1")
-    if not (jnp.issubdtype(xs.dtype, jnp.floating) or jnp.issubdtype(xs.dtype, jnp.integer)
-            or xs.dtype == jnp.bool_):
-        raise TypeError(f"`xs` has dtype {xs.dtype}; expected a float array")
     batched = xs.ndim == 3
     dtype = _float_dtype(list(p.values()) + [xs])
     p = {k: v.astype(dtype) for k, v in p.items()}
     xb = (xs if batched else xs[None]).astype(dtype)  # (B, T, I)
     B, T, _ = xb.shape
     if mask is not None:
-        mask = jnp.asarray(mask)
+        mask = _as_array("mask", mask)
         want = (B, T) if batched else (T,)
         if mask.shape != want:
             raise ValueError(f"`mask` has shape {mask.shape}; expected {want} like xs {xs.shape} "
@@ -110,7 +117,7 @@ def _prepare(params, xs, mask, h0) -> _Inputs:
     if h0 is None:
         h0 = jnp.zeros((B, n_hid), dtype)
     else:
-        h0 = jnp.asarray(h0)
+        h0 = _as_array("h0", h0)
         if h0.shape == (n_hid,):
             h0 = jnp.broadcast_to(h0[None], (B, n_hid))
         elif h0.shape != (B, n_hid) or not batched:
@@ -211,7 +218,7 @@ def _prepare_targets(ys, inp: _Inputs, task, mode):
     """Check ys against task and mode; return them batched (time-major for many-to-many)."""
     T, B, _ = inp.xs.shape
     n_out = inp.params["W"].shape[1]
-    ys = jnp.asarray(ys)
+    ys = _as_array("ys", ys)
     lead = {"many-to-one": (B,), "many-to-many": (B, T)}[mode]
     lead = lead if inp.batched else lead[1:]
     want = lead + (n_out,) if task == "regression" else lead
