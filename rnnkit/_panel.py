@@ -55,7 +55,8 @@ class Panel:
         widget: the ipywidgets box to display (``widget.panel`` is this object).
         controls: dict name -> input widget (see ``_panel_controls.build_controls``).
         train_button, sweep_button, stop_button, export_button, load_button: Buttons.
-        progress: IntProgress of the running job; status: HTML message area.
+        progress: IntProgress of the running job; status: HTML message area;
+            status_level: "info", "ok", "warn" or "error" (the last message's kind).
         views: FigureViews holding every figure and table.
         result: the last FitResult (or None); sweep_result: the last SweepResult.
     """

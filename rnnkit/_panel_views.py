@@ -110,8 +110,10 @@ class FigureViews:
             description="window #", min=0, max=0, value=0, continuous_update=False,
             style={"description_width": "70px"}, layout=widgets.Layout(width="420px"))
         self.window_slider.add_class("rnnkit-window-slider")
-        self.sweep_x = widgets.Dropdown(description="across", options=(), layout=widgets.Layout(width="220px"))
-        self.sweep_y = widgets.Dropdown(description="down", options=(), layout=widgets.Layout(width="220px"))
+        self.sweep_x = widgets.Dropdown(description="across", options=(),
+                                        layout=widgets.Layout(width="220px"))
+        self.sweep_y = widgets.Dropdown(description="down", options=(),
+                                        layout=widgets.Layout(width="220px"))
         self.sweep_table = widgets.HTML()
         self.sweep_table.add_class("rnnkit-sweep-table")
         self.metrics_table = widgets.HTML()

@@ -10,7 +10,6 @@ Skipped only when /usr/bin/chromium or the playwright package is missing.
 """
 import json
 import os
-import shutil
 import signal
 import socket
 import subprocess

@@ -310,6 +310,8 @@ def test_sequence_classification_draws_class_probabilities():
         hidden=4, epochs=2, batch_size=32)
     p = Panel(df, cfg)
     assert p.controls["window_full"].value and p.controls["group_column"].value == "cycle"
+    # A RangeIndex carries no time, so the time-column choice is shown.
+    assert p.controls["time_column"].layout.display is None
     _press(p, p.train_button)
     assert p.status_level == "ok", p.status.value
     assert "test_accuracy" in p.status.value
