@@ -20,8 +20,8 @@ from typing import NamedTuple, Optional
 import numpy as np
 import pandas as pd
 
-from ._checks import (check_finite, check_frame, check_order, fill_missing, numeric_values,
-                      read_times, require_column)
+from ._checks import (_is_number_column, _not_numeric, check_finite, check_frame, check_order,
+                      fill_missing, numeric_values, read_times, require_column)
 from ._config import Config
 from ._data import _boundary, _group_order
 from ._errors import DataError
@@ -86,9 +86,14 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
     for fld in ("time_column", "group_column"):
         if getattr(cfg, fld) is not None:
             require_column(df, getattr(cfg, fld), fld)
+    regression = spec.classes is None
     for name in spec.input_names:
         require_column(df, name, "features" if name not in spec.target_names else "target")
-    regression = spec.classes is None
+    # the same numeric check as prepare(), so text is refused by name, never half-parsed
+    for name in dict.fromkeys(list(spec.input_names) + (list(spec.target_names) if regression else [])):
+        if name in df.columns and not _is_number_column(df[name]):
+            raise DataError(f"column {name!r} is not numeric ({_not_numeric(df[name])}); the fit read "
+                            "numbers there: convert it (pd.to_numeric) before predict()")
     full = cfg.window == "full"
 
     take, gcode, gids = _group_order(df, cfg.group_column)
