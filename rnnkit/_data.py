@@ -268,7 +268,7 @@ def _encode(codes, uniques, t_rows, name, row_label, time_label, boundary, full)
             raise DataError(f"label {uniques[codes[i]]!r} of column {name!r} is in the {p} targets (first at row "
                             f"{row_label(i)!r}{time_label(i)}) but never in the training targets; the network "
                             "cannot learn it: put such examples in training, drop them, or change `split`")
-    classes = np.asarray([labels[k] for k in order])
+    classes = label_array([labels[k] for k in order])
     notes = ()
     if full:
         change = np.zeros(len(codes), dtype=bool)
@@ -277,6 +277,16 @@ def _encode(codes, uniques, t_rows, name, row_label, time_label, boundary, full)
         if n_vary:
             notes = (f"labels vary within {n_vary} sequence(s); each sequence takes its last row's label",)
     return out, classes, notes
+
+
+def label_array(labels: list) -> np.ndarray:
+    """(K,) array of class labels that keeps each label's own type.
+
+    numpy would turn [1, "down"] into the text ["1", "down"], and a predicted 1 would
+    then not equal the label 1 of the frame; labels of mixed types stay Python objects.
+    """
+    mixed = len({type(v) for v in labels}) > 1
+    return np.asarray(labels, dtype=object) if mixed else np.asarray(labels)
 
 
 def _scaled(values, names, scaler, dtype) -> np.ndarray:

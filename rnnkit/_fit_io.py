@@ -134,6 +134,7 @@ def save_fit(result, path) -> None:
 
 
 def _read_spec(doc: dict):
+    from ._data import label_array
     from ._predict import DataSpec
 
     data = doc["data"]
@@ -141,7 +142,7 @@ def _read_spec(doc: dict):
     scaler = Scaler(s["method"], tuple(s["columns"]), np.asarray(s["mean"], np.float64),
                     np.asarray(s["scale"], np.float64), tuple(s["input_names"]),
                     tuple(s["target_names"]))
-    classes = None if data["classes"] is None else np.asarray(data["classes"])
+    classes = None if data["classes"] is None else label_array(data["classes"])
     return DataSpec(Config.from_dict(doc["config"]), tuple(data["input_names"]),
                     tuple(data["target_names"]), classes, scaler, int(data["window"]),
                     int(data["horizon"]), data["index_name"])
