@@ -246,6 +246,10 @@ def write_document(doc: dict, path) -> Path:
     """Write a checked document atomically (temp file in the same folder, then os.replace)."""
     validate(doc)
     path = Path(path)
+    if path.is_dir():
+        raise ValueError(f"`path` ({str(path)!r}) is a folder; give a file name, "
+                         f"for example {str(path / 'experiment.json')!r}")
+    path.parent.mkdir(parents=True, exist_ok=True)  # as FitResult.save does
     text = json.dumps(doc, indent=2, allow_nan=False) + "\n"
     fd, tmp = tempfile.mkstemp(dir=path.parent or ".", prefix=f".{path.name}.", suffix=".tmp")
     try:
