@@ -18,7 +18,7 @@ from ._baselines import baseline_predictions, fit_baselines, prepared_mase_scale
 from ._config import Config
 from ._data import prepare
 from ._metrics import classification_metrics, confusion, regression_metrics
-from ._predict import NEW, DataSpec, frame_actuals, prediction_frame, prepare_like, spec_of
+from ._predict import NEW, DataSpec, frame_actuals, prediction_frame, prepare_like, spec_of, zoned_labels
 from ._train import evaluate, train
 
 SCORED = ("val", "test")
@@ -123,7 +123,7 @@ class FitResult:
 
     def __init__(self, *, params, spec: DataSpec, status, history, metrics, confusion=None,
                  prepared=None, actual=None, best_epoch=0, compiles=0, seconds=0.0,
-                 diagnostics=None, outputs=None):
+                 diagnostics=None, outputs=None, labels=None):
         self.params = params
         self.spec = spec
         self.config = spec.config
@@ -136,6 +136,7 @@ class FitResult:
         self.compiles = int(compiles)
         self.seconds = float(seconds)
         self._actual = actual
+        self._labels = labels  # the training frame's zone-aware times, or None
         self._outputs = dict(outputs or {})
         self._diagnostics = diagnostics
         self._lock = threading.Lock()
@@ -191,10 +192,11 @@ class FitResult:
             p = self.prepared
             parts = {s: (p.target_rows(s), self._split_outputs(s))
                      for s in ("train", "val", "test") if len(p.starts[s])}
-            return prediction_frame(p, self.spec, self._actual, parts)
+            return prediction_frame(p, self.spec, self._actual, parts, self._labels)
         p, actual = prepare_like(df, self.spec)
         parts = {NEW: (p.target_rows("train"), network_predictions(self.params, p, "train"))}
-        return prediction_frame(p, self.spec, actual, parts)
+        return prediction_frame(p, self.spec, actual, parts,
+                                zoned_labels(df, p.rows, self.config.time_column))
 
     def save(self, path) -> None:
         """Write this result to a folder (atomically); read it back with ``rnnkit.load_fit``."""
@@ -258,4 +260,5 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
                      status=outcome.status, history=outcome.history, metrics=metrics,
                      confusion=matrices, prepared=prepared, actual=actual,
                      best_epoch=outcome.best_epoch, compiles=outcome.compiles,
-                     seconds=outcome.seconds, outputs=outputs)
+                     seconds=outcome.seconds, outputs=outputs,
+                     labels=zoned_labels(df, prepared.rows, cfg.time_column))

@@ -177,6 +177,7 @@ def load_fit(path, df=None):
     from ._data import prepare
     from ._errors import DataError
     from ._fit import FitResult, frame_actuals
+    from ._predict import zoned_labels
 
     path = Path(path)
     if not _is_fit_folder(path):
@@ -198,7 +199,7 @@ def load_fit(path, df=None):
         table.index = pd.Index(spec.classes, name="true")
         table.columns = pd.Index(spec.classes, name="predicted")
         confusion[file.stem[len("confusion_"):]] = table
-    prepared = actual = None
+    prepared = actual = labels = None
     if df is not None:
         prepared = prepare(df, spec.config)
         sc = prepared.scaler
@@ -208,10 +209,11 @@ def load_fit(path, df=None):
                             f"other scaling statistics than the saved ones ({str(path)!r}); pass the "
                             "training frame, or leave `df` out and call result.predict(frame)")
         actual = frame_actuals(df, prepared)
+        labels = zoned_labels(df, prepared.rows, spec.config.time_column)
     out = doc["outcome"]
     # With the data attached, diagnostics are measured again (window_states(i) for any i).
     diagnostics = None if prepared is not None else _read_diagnostics(path / "diagnostics.npz")
     return FitResult(params=params, spec=spec, status=out["status"], history=history, metrics=metrics,
                      confusion=confusion, prepared=prepared, actual=actual,
                      best_epoch=out["best_epoch"], compiles=out["compiles"], seconds=out["seconds"],
-                     diagnostics=diagnostics)
+                     diagnostics=diagnostics, labels=labels)

@@ -206,7 +206,20 @@ def _index(prepared, spec, at=None):
     return pd.Index(values, name=spec.index_name)
 
 
-def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, parts: dict) -> pd.DataFrame:
+def zoned_labels(df: pd.DataFrame, rows: np.ndarray, time_column: Optional[str]) -> Optional[pd.Index]:
+    """The caller's own times of the used rows when they carry a time zone, else None.
+
+    prepare() keeps zone-aware times as naive UTC for its arithmetic; predictions go
+    back on the caller's labels, zone included, so that they line up with the frame.
+    """
+    src = pd.Index(df[time_column]) if time_column is not None else df.index
+    if isinstance(src, pd.DatetimeIndex) and src.tz is not None:
+        return src.take(rows)
+    return None
+
+
+def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, parts: dict,
+                     labels: Optional[pd.Index] = None) -> pd.DataFrame:
     """The prediction DataFrame (see ``FitResult.predict``).
 
     Args:
@@ -215,6 +228,7 @@ def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, par
       actual: (R, O) regression values or (R,) labels, from ``frame_actuals``/``prepare_like``.
       parts: split label -> (target rows (N,) or (N, T), predictions): regression
         (N, [T,] O) in original units; classification (N, [T,] K) probabilities.
+      labels: (R,) the index to use instead of ``prepared.index`` (``zoned_labels``).
 
     Returns:
       DataFrame, one row per used row of the frame (one per sequence for window="full").
@@ -238,7 +252,8 @@ def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, par
     else:
         cols.update(_class_columns(actual, pred, spec.classes))
     cols["split"] = split
-    return pd.DataFrame(cols, index=_index(prepared, spec))
+    index = _index(prepared, spec) if labels is None else labels.rename(spec.index_name)
+    return pd.DataFrame(cols, index=index)
 
 
 def _regression_columns(actual, pred, names):
