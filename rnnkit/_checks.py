@@ -72,12 +72,18 @@ def _is_number_column(s: pd.Series) -> bool:
     return ptypes.is_numeric_dtype(s.dtype) and not ptypes.is_complex_dtype(s.dtype)
 
 
+def _is_time_like(s: pd.Series) -> bool:
+    """Dates, durations and periods: never class labels, even though they are not floats."""
+    return (ptypes.is_datetime64_any_dtype(s.dtype) or ptypes.is_timedelta64_dtype(s.dtype)
+            or isinstance(s.dtype, pd.PeriodDtype))
+
+
 def resolve_columns(df: pd.DataFrame, config, special: Sequence[str]) -> Tuple[List[str], List[str]]:
     """Target and feature names, defaults filled in and every column checked.
 
     Defaults: target None -> regression: the first numeric column that is not the
     time/group/split column; classification: the first such column that does not
-    hold floats (labels are strings, ints, bools or categories). features None ->
+    hold floats or times (labels are strings, ints, bools or categories). features None ->
     every other numeric column.
     """
     special = set(special)
@@ -88,7 +94,7 @@ def resolve_columns(df: pd.DataFrame, config, special: Sequence[str]) -> Tuple[L
         if config.task == "regression":
             pool = numeric
         else:
-            pool = [c for c in usable if not ptypes.is_float_dtype(df[c].dtype)]
+            pool = [c for c in usable if not (ptypes.is_float_dtype(df[c].dtype) or _is_time_like(df[c]))]
         if not pool:
             kind = "numeric " if config.task == "regression" else "label (non-float) "
             raise DataError(f"no {kind}column can serve as `target`; the columns are {list(df.columns)}; "
