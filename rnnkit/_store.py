@@ -76,6 +76,9 @@ class RunStore:
             raise TypeError(f"`store` (={path!r}) must be a file path, a RunStore or None")
         self.path = None if path is None else Path(path)
         if self.path is not None:
+            if self.path.is_dir():
+                raise ValueError(f"`store` ({str(self.path)!r}) is a folder; give a file name, "
+                                 f"for example {str(self.path / 'sweep.sqlite')!r}")
             self.path.parent.mkdir(parents=True, exist_ok=True)
         # One connection, used under a lock, so a sweep may run in a background thread.
         self._lock = threading.Lock()
