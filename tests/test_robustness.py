@@ -202,6 +202,15 @@ def test_label_kinds_classify_and_predict_the_same_labels(kind):
         accuracy_score(test["actual"].astype(str), test["predicted"].astype(str)), abs=1e-12)
 
 
+def test_default_label_is_not_a_date_column():
+    # A frame whose first column holds timestamps (not set as `time_column`): the default
+    # label is the first column of labels, never the dates.
+    df = labelled()
+    df.insert(0, "logged_at", pd.date_range("2024-01-01", periods=N, freq="min"))
+    p = prepare(df, Config(**FAST, task="classification", horizon=0, features=["a", "b"]))
+    assert p.config.target == "lab" and sorted(p.classes.tolist()) == ["down", "up"]
+
+
 def test_classification_many_to_many_and_a_later_horizon():
     r, pred = fit_untouched(labelled(), target="lab", features=["a"], task="classification",
                             mode="many-to-many", horizon=0)
@@ -654,3 +663,29 @@ def test_load_config_refuses_bad_files_naming_the_field(tmp_path, text, where):
     with pytest.raises(ValueError) as info:
         rnnkit.load_config(path)
     assert where in str(info.value)
+
+
+# ---------------------------------------------------------------- sweeps
+
+def test_sweep_on_odd_space_values_exports_a_winner_that_fits(tmp_path):
+    df = _tz(series())
+    before = copy.deepcopy(df)
+    base = Config(**FAST, target="y")
+    result = rnnkit.sweep(df, base, {"window": np.array([1, 4]), "activation": ["tanh", "relu"]},
+                          store=tmp_path / "runs" / "sweep.sqlite", progress=False)
+    pd.testing.assert_frame_equal(df, before)
+    path = result.export(tmp_path / "best.json")
+    cfg = rnnkit.load_config(path, df=df)  # same frame: no FingerprintWarning (warnings are errors)
+    assert cfg == result.best() and type(cfg.window) is int
+    assert fit(df, cfg, progress=False).status == "ok"
+
+
+def test_sweep_store_that_is_a_folder_or_not_a_database(tmp_path, fitted):
+    base = Config(**FAST, target="y")
+    with pytest.raises(ValueError, match="`store`"):
+        rnnkit.sweep(series(), base, {"hidden": [2]}, store=tmp_path, progress=False)
+    (tmp_path / "junk.sqlite").write_text("not a database")
+    with pytest.raises(ValueError, match="`store`"):
+        rnnkit.sweep(series(), base, {"hidden": [2]}, store=tmp_path / "junk.sqlite", progress=False)
+    assert (tmp_path / "junk.sqlite").read_text() == "not a database"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["junk.sqlite"]
