@@ -33,4 +33,10 @@ def test_run_py_smoke_reports_every_target(tmp_path):
     for name in OURS:
         assert f"| {name} |" in text
     assert "jax " in text and "torch " in text and "numpy " in text  # versions recorded
-    assert not list(tmp_path.glob(".RESULTS.md.*"))  # atomic write left no temp file behind
+    assert not list(tmp_path.glob(".RESULTS.*"))  # atomic writes left no temp file behind
+    # the saved numbers rebuild the same Markdown
+    again = tmp_path / "again.md"
+    subprocess.run([sys.executable, str(ROOT / "benchmarks" / "run.py"), "--render",
+                    str(out.with_suffix(".json")), "--out", str(again)], check=True, timeout=120,
+                   capture_output=True)
+    assert again.read_text() == text
