@@ -112,15 +112,23 @@ def cmd_demo(args) -> int:
     return 0
 
 
+def _out_folder(value) -> Path:
+    """The --out folder; a file there is refused before any training starts."""
+    out = Path(value)
+    if out.exists() and not out.is_dir():
+        raise UsageError(f"--out {value} is a file; give a folder (it is made if missing)")
+    return out
+
+
 def cmd_fit(args) -> int:
     from ._export import load_config
     from ._fit import fit
     from ._report import write_report
 
+    out = _out_folder(args.out)
     config = load_config(args.config)
     df = read_data(args.data, args.index_col)
     result = fit(df, config, progress=not args.no_progress)
-    out = Path(args.out)
     result.save(out / "model")
     write_report(out / "report.html", result, title=f"rnnkit fit of {Path(args.data).name}")
     print(f"status: {result.status}")
@@ -134,9 +142,9 @@ def cmd_sweep(args) -> int:
     from ._report import write_report
     from ._sweep import sweep
 
+    out = _out_folder(args.out)
     config, space, options = read_space(args.space)
     df = read_data(args.data, args.index_col)
-    out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     result = sweep(df, config, space, workers=args.workers, store=args.store,
                    progress=not args.no_progress, **options)
@@ -262,7 +270,7 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
     except UsageError as e:
         print(f"rnnkit {args.command}: {e}", file=sys.stderr)
         return 2
-    except (DataError, ValueError, TypeError, FileNotFoundError) as e:
+    except (DataError, ValueError, TypeError, OSError) as e:  # OSError: unreadable/unwritable paths
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         print(f"rnnkit {args.command}: {msg}", file=sys.stderr)
         return 2
