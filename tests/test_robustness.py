@@ -689,3 +689,18 @@ def test_sweep_store_that_is_a_folder_or_not_a_database(tmp_path, fitted):
         rnnkit.sweep(series(), base, {"hidden": [2]}, store=tmp_path / "junk.sqlite", progress=False)
     assert (tmp_path / "junk.sqlite").read_text() == "not a database"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["junk.sqlite"]
+
+
+# ---------------------------------------------------------------- command line
+
+def test_cli_refuses_an_output_folder_that_is_a_file(tmp_path, capsys):
+    from rnnkit.__main__ import main
+
+    series().to_csv(tmp_path / "data.csv", index=False)
+    rnnkit.save_config(Config(**FAST, target="y"), tmp_path / "cfg.json")
+    (tmp_path / "taken").write_text("keep me")
+    code = main(["fit", str(tmp_path / "cfg.json"), "--data", str(tmp_path / "data.csv"),
+                 "--out", str(tmp_path / "taken"), "--no-progress"])
+    err = capsys.readouterr().err
+    assert code == 2 and "--out" in err and "folder" in err, err
+    assert (tmp_path / "taken").read_text() == "keep me"
