@@ -147,7 +147,7 @@ def read_times(df: pd.DataFrame, time_column: Optional[str], take: Optional[np.n
             return v, v
         else:
             try:
-                values = pd.DatetimeIndex(pd.to_datetime(s, format="ISO8601"))
+                values = pd.DatetimeIndex(_parse_times(s))
             except (ValueError, TypeError) as exc:
                 raise DataError(f"time column {time_column!r} (dtype {s.dtype}) is neither dates nor numbers "
                                 f"({exc}); convert it with pd.to_datetime(df[{time_column!r}]) "
@@ -164,6 +164,18 @@ def read_times(df: pd.DataFrame, time_column: Optional[str], take: Optional[np.n
     labels = labels if take is None else labels[take]
     _no_missing_time(np.isnat(labels), df, time_column or "index", take)
     return labels, labels.view(np.int64)
+
+
+def _parse_times(s: pd.Series) -> pd.Series:
+    """ISO 8601 text as times; text with several UTC offsets (local time across a DST
+    change, as loggers write it) is read as UTC instants."""
+    try:
+        return pd.to_datetime(s, format="ISO8601")
+    except ValueError as exc:  # pandas refuses mixed offsets unless asked for UTC
+        try:
+            return pd.to_datetime(s, format="ISO8601", utc=True)
+        except ValueError:
+            raise exc from None
 
 
 def _no_missing_time(nat: np.ndarray, df, name, take) -> None:
