@@ -26,13 +26,14 @@ class UsageError(Exception):
 
 # --- reading inputs ---------------------------------------------------------
 
-def read_data(path: str, index_col: Optional[str] = "auto"):
+def read_data(path: str, index_col: Optional[str] = "auto", keep: Optional[str] = None):
     """Read a CSV or Parquet file into a DataFrame.
 
     With ``index_col="auto"`` an unnamed first column (as pandas writes an
     index) or a first column that parses wholly as dates becomes the index;
     ``index_col=None`` keeps a plain range index; any other value names the
-    column to use as index.
+    column to use as index. ``keep`` (the config's time column) is never made
+    the index by "auto": the config reads it as a column.
     """
     import pandas as pd
 
@@ -56,11 +57,16 @@ def read_data(path: str, index_col: Optional[str] = "auto"):
                              f"columns are {list(df.columns)}")
         return df.set_index(index_col)
     first = df.columns[0]
+    if first == keep:
+        return df
     if str(first).startswith("Unnamed"):
         return df.set_index(first).rename_axis(None)
     col = df[first]
     if col.dtype == object or str(col.dtype).startswith(("str", "string")):
-        parsed = pd.to_datetime(col, errors="coerce", format="mixed")
+        try:
+            parsed = pd.to_datetime(col, errors="coerce", format="mixed")
+        except ValueError:  # several UTC offsets (local times across DST): read them as UTC
+            parsed = pd.to_datetime(col, errors="coerce", format="mixed", utc=True)
         if parsed.notna().all():
             return df.drop(columns=[first]).set_index(pd.DatetimeIndex(parsed, name=first))
     elif str(col.dtype).startswith("datetime"):
@@ -127,7 +133,7 @@ def cmd_fit(args) -> int:
 
     out = _out_folder(args.out)
     config = load_config(args.config)
-    df = read_data(args.data, args.index_col)
+    df = read_data(args.data, args.index_col, keep=config.time_column)
     result = fit(df, config, progress=not args.no_progress)
     result.save(out / "model")
     write_report(out / "report.html", result, title=f"rnnkit fit of {Path(args.data).name}")
@@ -144,7 +150,7 @@ def cmd_sweep(args) -> int:
 
     out = _out_folder(args.out)
     config, space, options = read_space(args.space)
-    df = read_data(args.data, args.index_col)
+    df = read_data(args.data, args.index_col, keep=config.time_column)
     out.mkdir(parents=True, exist_ok=True)
     result = sweep(df, config, space, workers=args.workers, store=args.store,
                    progress=not args.no_progress, **options)
@@ -184,7 +190,7 @@ def cmd_check_gradients(args) -> int:
     from ._export import load_config
 
     config = load_config(args.config)
-    df = read_data(args.data, args.index_col)
+    df = read_data(args.data, args.index_col, keep=config.time_column)
     table = gradient_check_on_data(df, config, n_windows=args.windows)
     print(table.to_string(float_format=lambda v: f"{v:.3g}"))
     worst = float(table["jax_vs_fd_rel"].max())
