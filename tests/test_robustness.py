@@ -74,6 +74,8 @@ ODD_FRAMES = {
     "period index": lambda d: d.set_index(pd.period_range("1990-01", periods=len(d), freq="M")),
     "time column as ISO text": lambda d: d.assign(ts=pd.date_range("2024-01-01", periods=len(d),
                                                                    freq="D").strftime("%Y-%m-%d")),
+    "time column as text with DST offsets": lambda d: d.assign(  # +01:00 then +02:00
+        ts=pd.date_range("2024-03-30", periods=len(d), freq="h", tz="Europe/Berlin").astype(str)),
     "numeric time column": lambda d: d.assign(ts=np.arange(len(d)) * 0.25),
     "irregular time steps": lambda d: d.set_index(pd.DatetimeIndex(
         pd.Timestamp("2024-01-01") + pd.to_timedelta(np.cumsum(np.arange(len(d)) % 3 + 1), "h"))),
@@ -102,8 +104,9 @@ def test_odd_but_valid_frames_train_and_predict_on_their_own_index(name):
     # times), or the index as it was given (a zone-aware index keeps its zone); a period
     # is shown by its start.
     want = pd.Index(df["ts"]) if "ts" in df.columns else df.index
-    if "ts" in df.columns and df["ts"].dtype != np.float64:
-        want = pd.DatetimeIndex(pd.to_datetime(df["ts"]))
+    if "ts" in df.columns and df["ts"].dtype != np.float64:  # text read as times (offsets: UTC)
+        want = pd.DatetimeIndex(pd.to_datetime(df["ts"], utc="DST" in name))
+        want = want.tz_localize(None) if want.tz is not None else want
     if isinstance(want, pd.PeriodIndex):
         want = want.to_timestamp()
     pd.testing.assert_index_equal(pred.index, want.rename(pred.index.name), exact=False)
@@ -704,3 +707,28 @@ def test_cli_refuses_an_output_folder_that_is_a_file(tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "--out" in err and "folder" in err, err
     assert (tmp_path / "taken").read_text() == "keep me"
+
+
+def test_cli_keeps_the_configured_time_column_as_a_column(tmp_path, capsys):
+    from rnnkit.__main__ import main
+
+    df = series()
+    df.insert(0, "when", pd.date_range("2024-03-30", periods=N, freq="h", tz="Europe/Berlin"))
+    df.to_csv(tmp_path / "data.csv", index=False)  # first column of dates, as a logger writes
+    rnnkit.save_config(Config(**FAST, target="y", time_column="when"), tmp_path / "cfg.json")
+    code = main(["fit", str(tmp_path / "cfg.json"), "--data", str(tmp_path / "data.csv"),
+                 "--out", str(tmp_path / "out"), "--no-progress"])
+    assert code == 0, capsys.readouterr().err
+    assert load_fit(tmp_path / "out" / "model").config.time_column == "when"
+
+
+def test_cli_reads_a_first_column_of_local_times_across_dst_as_the_index(tmp_path, capsys):
+    from rnnkit.__main__ import read_data
+
+    df = series()
+    df.insert(0, "when", pd.date_range("2024-03-30", periods=N, freq="h", tz="Europe/Berlin"))
+    df.to_csv(tmp_path / "data.csv", index=False)  # offsets +01:00, then +02:00
+    back = read_data(str(tmp_path / "data.csv"))
+    assert list(back.columns) == ["y", "x"]
+    assert isinstance(back.index, pd.DatetimeIndex)
+    assert (back.index == pd.DatetimeIndex(df["when"])).all()  # the same instants
