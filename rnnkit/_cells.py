@@ -111,6 +111,34 @@ def init_elman(key, n_in: int, n_hidden: int, n_out: int, *, scheme: str = "glor
     }
 
 
+def init_elman_traceable(key, n_in: int, n_hidden: int, n_out: int, scheme, recurrent_scale,
+                         dtype) -> dict:
+    """``init_elman`` with the scheme and recurrent scale as data, for use inside ``jax.jit``.
+
+    The same draws as ``init_elman`` (same keys, same functions), so the same
+    values; one compiled program serves every scheme and scale.
+
+    Args:
+      key: a jax.random key.
+      n_in, n_hidden, n_out: I, H, O (static, already checked).
+      scheme: () int32 index into INITS.
+      recurrent_scale: () float in ``dtype``.
+      dtype: float dtype of every parameter.
+
+    Returns:
+      dict U (I, H), V (H, H), b (H,), W (H, O), c (O,).
+    """
+    k_u, k_v, k_w = jax.random.split(key, 3)
+    branches = [lambda k, s=s: _recurrent(k, n_hidden, s, dtype) for s in INITS]
+    return {
+        "U": _glorot(k_u, (n_in, n_hidden), dtype),  # (I, H)
+        "V": jax.lax.switch(scheme, branches, k_v) * recurrent_scale,  # (H, H)
+        "b": jnp.zeros((n_hidden,), dtype),  # (H,)
+        "W": _glorot(k_w, (n_hidden, n_out), dtype),  # (H, O)
+        "c": jnp.zeros((n_out,), dtype),  # (O,)
+    }
+
+
 def elman_step(params: dict, h, x_proj, phi: Callable):
     """One unbatched (or row-batched) Elman step: h_t = phi(x_t U + b + h_{t-1} V).
 

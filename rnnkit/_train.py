@@ -27,9 +27,8 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from . import _epoch
-from ._cells import init_params
-from ._config import ACTIVATIONS, Config
-from ._optim import init_state, program_key
+from ._config import ACTIVATIONS, INITS, Config
+from ._optim import hyperparams, program_key
 
 SHAPE_KEYS = ("window", "n_train", "n_val", "rows")
 HISTORY_COLUMNS = ("epoch", "train_loss", "val_loss", "grad_norm", "lr", "seconds")
@@ -148,15 +147,29 @@ def activation_index(activation) -> np.ndarray:
     raise ValueError(f"`activation` (={activation!r}) must be a name in {ACTIVATIONS} or its index 0..3")
 
 
+def initial_state(prepared, config: Config):
+    """The training state ``train`` starts from: (params, opt_state, shuffling key).
+
+    One cached compiled program (``_epoch.init_program``) makes all of it; the
+    seed, init scheme, recurrent scale and optimizer hyperparameters are data.
+    """
+    dtype = np.dtype(config.dtype)
+    name, clipping = program_key(config.optimizer, config.clip)
+    program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype,
+                                  n_in=prepared.n_inputs, hidden=config.hidden,
+                                  n_out=prepared.n_outputs)
+    hyper = hyperparams(config.optimizer, config.lr, config.clip, config.weight_decay, dtype)
+    return program(np.asarray(config.seed, np.int32), np.asarray(INITS.index(config.init), np.int32),
+                   np.asarray(config.recurrent_scale, dtype), hyper)
+
+
 def initial_params(prepared, config: Config) -> dict:
     """The parameters ``train`` starts from (same key, same values), as jax arrays.
 
     The seed's key is split in two: the first half initialises, the second shuffles.
     """
-    k_init, _ = jax.random.split(jax.random.key(config.seed))
-    return init_params(k_init, prepared.n_inputs, config.hidden, prepared.n_outputs,
-                       scheme=config.init, recurrent_scale=config.recurrent_scale,
-                       dtype=np.dtype(config.dtype))
+    with precision(config.dtype):
+        return initial_state(prepared, config)[0]
 
 
 def _check_call(prepared, config, stop, on_epoch):
@@ -275,9 +288,7 @@ def _setup(prepared, config: Config, dims: Dict[str, int]):
     val_batch = min(_epoch.eval_batch(dims["window"], config.hidden), _round_up(dims["n_val"], 16))
     train_split = _split(prepared, "train", _round_up(dims["n_train"], batch))
     val_split = _split(prepared, "val", _round_up(dims["n_val"], val_batch))
-    params = initial_params(prepared, config)
-    opt_state = init_state(config.optimizer, config.lr, config.clip, config.weight_decay, params)
-    state = (params, opt_state, jax.random.split(jax.random.key(config.seed))[1])
+    state = initial_state(prepared, config)
     name, clipping = program_key(config.optimizer, config.clip)
     program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
                                    clipping=clipping, dtype=dtype, batch=batch,
