@@ -13,6 +13,8 @@ import numpy as np
 import pandas as pd
 import pytest
 import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from sklearn.metrics import accuracy_score, mean_absolute_error
 
 import rnnkit
@@ -732,3 +734,83 @@ def test_cli_reads_a_first_column_of_local_times_across_dst_as_the_index(tmp_pat
     assert list(back.columns) == ["y", "x"]
     assert isinstance(back.index, pd.DatetimeIndex)
     assert (back.index == pd.DatetimeIndex(df["when"])).all()  # the same instants
+
+
+# ---------------------------------------------------------------- any frame: a clean answer or a clean refusal
+
+_KINDS = {
+    "float": lambda n, rng: rng.standard_normal(n),
+    "float with a NaN": lambda n, rng: np.where(np.arange(n) == n // 2, np.nan, rng.standard_normal(n)),
+    "float with an inf": lambda n, rng: np.where(np.arange(n) == n // 3, np.inf, rng.standard_normal(n)),
+    "int": lambda n, rng: rng.integers(0, 5, n),
+    "bool": lambda n, rng: rng.integers(0, 2, n).astype(bool),
+    "text labels": lambda n, rng: np.array(["a", "b", "c"])[rng.integers(0, 3, n)],
+    "numbers as objects": lambda n, rng: pd.Series(list(rng.standard_normal(n)), dtype=object).to_numpy(),
+    "dates": lambda n, rng: pd.date_range("2024", periods=n, freq="h"),
+    "categorical": lambda n, rng: pd.Categorical(np.array(["x", "y"])[rng.integers(0, 2, n)]),
+    "nullable Int64 with NA": lambda n, rng: pd.array(np.where(rng.random(n) < 0.1, None,
+                                                               rng.integers(0, 9, n)), dtype="Int64"),
+    "constant": lambda n, rng: np.full(n, 3.0),
+    "all NaN": lambda n, rng: np.full(n, np.nan),
+}
+_INDEXES = {
+    "range": lambda n, rng: pd.RangeIndex(n),
+    "daily": lambda n, rng: pd.date_range("2024", periods=n, freq="D"),
+    "hourly, zone-aware": lambda n, rng: pd.date_range("2024-03-09", periods=n, freq="h", tz="US/Pacific"),
+    "shuffled dates": lambda n, rng: pd.date_range("2024", periods=n, freq="D")[rng.permutation(n)],
+    "irregular": lambda n, rng: pd.DatetimeIndex(pd.Timestamp("2024") + pd.to_timedelta(
+        np.cumsum(rng.integers(1, 4, n)), "h")),
+    "text": lambda n, rng: pd.Index([f"k{i}" for i in range(n)]),
+    "monthly periods": lambda n, rng: pd.period_range("2000-01", periods=n, freq="M"),
+}
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=list(HealthCheck))
+@given(n=st.integers(2, 70), kinds=st.lists(st.sampled_from(sorted(_KINDS)), min_size=1, max_size=4),
+       index=st.sampled_from(sorted(_INDEXES)), seed=st.integers(0, 999),
+       task=st.sampled_from(["regression", "classification"]), mode=st.sampled_from(["many-to-one", "many-to-many"]),
+       window=st.integers(1, 6), horizon=st.integers(0, 2), missing=st.sampled_from(["error", "ffill", "interpolate"]),
+       season=st.sampled_from(["auto", None, 5]), first_as_target=st.booleans(), groups=st.booleans())
+def test_any_frame_is_prepared_or_refused_cleanly(n, kinds, index, seed, task, mode, window, horizon, missing,
+                                                  season, first_as_target, groups):
+    rng = np.random.default_rng(seed)
+    df = pd.DataFrame({f"c{i}": _KINDS[k](n, rng) for i, k in enumerate(kinds)}, index=_INDEXES[index](n, rng))
+    kw = dict(task=task, mode=mode, window=window, horizon=horizon, missing=missing, season=season,
+              target_as_input=horizon > 0)
+    if groups:
+        df["seq"] = np.repeat(np.arange(4), -(-n // 4))[:n]
+        kw["group_column"] = "seq"
+    if first_as_target:
+        kw["target"] = "c0"
+    cfg = Config(**kw)
+    before = copy.deepcopy(df)
+    try:
+        p = prepare(df, cfg)
+    except (DataError, ValueError, TypeError) as e:  # never a KeyError, IndexError or numpy's own error
+        assert isinstance(e, DataError), f"{type(e).__name__}: {e}"
+        assert len(str(e)) > 30
+    else:
+        for split in ("train", "val", "test"):
+            x, y, _ = p.windows(split)
+            assert np.isfinite(x).all()
+            assert p.classes is not None or np.isfinite(y).all()
+    pd.testing.assert_frame_equal(df, before)
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=list(HealthCheck))
+@given(n=st.integers(1, 30), y=st.sampled_from(sorted(_KINDS)), x=st.sampled_from(sorted(_KINDS)),
+       index=st.sampled_from(sorted(_INDEXES)), seed=st.integers(0, 999), drop=st.sampled_from([None, "y", "x"]))
+def test_predict_on_any_new_frame_answers_or_refuses_cleanly(fitted, n, y, x, index, seed, drop):
+    rng = np.random.default_rng(seed)
+    df = pd.DataFrame({"y": _KINDS[y](n, rng), "x": _KINDS[x](n, rng)}, index=_INDEXES[index](n, rng))
+    if drop:
+        df = df.drop(columns=drop)
+    before = copy.deepcopy(df)
+    try:
+        pred = fitted.predict(df)
+    except (DataError, ValueError, TypeError) as e:
+        assert isinstance(e, DataError), f"{type(e).__name__}: {e}"
+    else:
+        assert len(pred) <= n and pred["predicted"].notna().any()
+        assert np.isfinite(pred["predicted"].dropna().to_numpy(np.float64)).all()
+    pd.testing.assert_frame_equal(df, before)
