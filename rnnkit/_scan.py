@@ -47,25 +47,18 @@ def times(a, w):
     return (_rows(a) @ w).reshape(a.shape[:-1] + (w.shape[-1],))
 
 
-def project(xs, U, b):
-    """The input projection x_t U + b for every step, as ONE product.
+def scan_states(act: str, xs, U, V, b, h0, mask):
+    """Run the recurrence h_t = phi(x_t U + h_{t-1} V + b) over time.
 
-    Args:
-      xs: (T, B, I).  U: (I, H).  b: (H,).
-
-    Returns:
-      (T, B, H)
-    """
-    return times(xs, U) + b[None, None, :]  # (T, B, H)
-
-
-def scan_states(act: str, xp, V, h0, mask):
-    """Run the recurrence h_t = phi(xp_t + h_{t-1} V) over time.
+    The input product x_t U is taken inside the body, step by step: a (T, B, H)
+    projection buffer made before the loop cost more (a fresh allocation and one
+    more pass over T*B*H floats) than the small extra product per step. Measured
+    at (B, T, I, H) = (128, 200, 8, 256): forward 24 ms instead of 62 ms; whole
+    training step 118-132 ms instead of 144-211 ms (best of 15-20, busy machine).
 
     Args:
       act: activation name (static).
-      xp: projected inputs x_t U + b, (T, B, H).
-      V: (H, H).  h0: (B, H).
+      xs: (T, B, I).  U: (I, H).  V: (H, H).  b: (H,).  h0: (B, H).
       mask: (T, B, 1) bool or None; a False step holds the state.
 
     Returns:
@@ -74,22 +67,22 @@ def scan_states(act: str, xp, V, h0, mask):
     phi = get_activation(act).value
     if mask is None:
         # Branch-free body; the carry is one array.
-        def step(h, p):
-            h = phi(p + h @ V)  # (B, H)
+        def step(h, x):
+            h = phi(x @ U + h @ V + b[None, :])  # (B, H)
             return h, h
-        _, hs = lax.scan(step, h0, xp)
+        _, hs = lax.scan(step, h0, xs)
     else:
         def step(h, inp):
-            p, m = inp
-            h = jnp.where(m, phi(p + h @ V), h)  # (B, H); padded rows hold
+            x, m = inp
+            h = jnp.where(m, phi(x @ U + h @ V + b[None, :]), h)  # (B, H); padded rows hold
             return h, h
-        _, hs = lax.scan(step, h0, (xp, mask))
+        _, hs = lax.scan(step, h0, (xs, mask))
     return hs
 
 
 def states_autodiff(act, xs, U, V, b, h0, mask):
     """Hidden states whose gradient is JAX autodiff of the scan (the plain version)."""
-    return scan_states(act, project(xs, U, b), V, h0, mask)
+    return scan_states(act, xs, U, V, b, h0, mask)
 
 
 @partial(jax.custom_vjp, nondiff_argnums=(0,))
@@ -98,11 +91,11 @@ def states_fast(act, xs, U, V, b, h0, mask):
 
     Same value as ``states_autodiff``; same gradient to rounding.
     """
-    return scan_states(act, project(xs, U, b), V, h0, mask)
+    return states_autodiff(act, xs, U, V, b, h0, mask)
 
 
 def _fast_fwd(act, xs, U, V, b, h0, mask):
-    hs = scan_states(act, project(xs, U, b), V, h0, mask)  # (T, B, H)
+    hs = states_autodiff(act, xs, U, V, b, h0, mask)  # (T, B, H)
     return hs, (xs, U, V, h0, hs, mask)
 
 
