@@ -13,7 +13,8 @@ A training step is forward + BPTT + Adam on a many-to-one regression loss
 
 Achieved GFLOP/s counts the matrix products of one step,
 6 T B H^2 + 4 T B I H (+ the output layer), and is set against numpy's float32
-1024 x 1024 matmul rate measured in the same run. Prints one row per shape, the
+1024 x 1024 matmul rate measured right beside each shape (the machine is shared:
+one rate taken at the start would not describe the load during a later shape). Prints one row per shape, the
 TARGET lines read by ``run.py``, and a RESULT line (JSON).
 """
 from __future__ import annotations
@@ -129,41 +130,49 @@ def main(argv=None):
         torch.set_num_threads(2)
     except ImportError:
         torch = None
-    matmul = numpy_matmul_gflops(3 if args.smoke else 20)
+    matmul_reps = 3 if args.smoke else 20
     print(f"jax {jax.__version__}, torch {torch.__version__ if torch else 'absent'}, "
-          f"load {_util.load_average()}; numpy float32 1024x1024 matmul: {matmul:.1f} GFLOP/s")
+          f"load {_util.load_average()}")
     print(f"{'B,T,I,H':>18} {'fast ms':>9} {'autodiff ms':>12} {'torch ms':>9} {'autodiff/fast':>14} "
-          f"{'torch/fast':>11} {'GFLOP/s':>8} {'% matmul':>9} {'grad rel diff':>14}")
+          f"{'torch/fast':>11} {'GFLOP/s':>8} {'matmul':>7} {'% matmul':>9} {'grad rel diff':>14}")
     rows = []
     for B, T, I, H in shapes:
         fast, plain, rel = jax_steps(B, T, I, H)
+        matmul_before = numpy_matmul_gflops(matmul_reps)
         t_fast = timed(fast, min_s, min_reps, max_reps)
         t_plain = timed(plain, min_s, min_reps, max_reps)
         t_torch = timed(torch_step(B, T, I, H), min_s, min_reps, max_reps) if torch else float("nan")
+        # numpy's rate just before and just after this shape's timings, averaged
+        matmul = (matmul_before + numpy_matmul_gflops(matmul_reps)) / 2
         gflops = step_flops(B, T, I, H) / t_fast / 1e9
         row = {"shape": [B, T, I, H], "fast_ms": 1e3 * t_fast, "autodiff_ms": 1e3 * t_plain,
                "torch_ms": 1e3 * t_torch, "autodiff_over_fast": t_plain / t_fast,
                "torch_over_fast": t_torch / t_fast, "gflops": gflops,
-               "matmul_fraction": gflops / matmul, "grad_rel_diff": rel}
+               "matmul_gflops": matmul, "matmul_fraction": gflops / matmul, "grad_rel_diff": rel,
+               "load": _util.load_average()}
         rows.append(row)
         print(f"{str((B, T, I, H)):>18} {row['fast_ms']:9.2f} {row['autodiff_ms']:12.2f} "
               f"{row['torch_ms']:9.2f} {row['autodiff_over_fast']:13.2f}x {row['torch_over_fast']:10.2f}x "
-              f"{gflops:8.1f} {100 * row['matmul_fraction']:8.1f}% {rel:14.1e}", flush=True)
+              f"{gflops:8.1f} {matmul:7.0f} {100 * row['matmul_fraction']:8.1f}% {rel:14.1e}", flush=True)
 
-    small, large = rows[0], rows[-1]
+    large = rows[-1]
     name = "x".join(map(str, large["shape"]))
     targets = [
         _util.target(f"step.fast_over_autodiff_{name}", large["autodiff_over_fast"], ">= 1.1x",
                      large["autodiff_over_fast"] >= 1.1, "x"),
-        _util.target(f"step.torch_over_fast_{name}", large["torch_over_fast"], ">= 1.0x",
-                     large["torch_over_fast"] >= 1.0, "x"),
-        _util.target(f"step.torch_over_fast_{'x'.join(map(str, small['shape']))}",
-                     small["torch_over_fast"], ">= 5x", small["torch_over_fast"] >= 5.0, "x"),
         _util.target("step.grads_fast_equal_autodiff", max(r["grad_rel_diff"] for r in rows),
                      "<= 1e-5 relative (float32)", max(r["grad_rel_diff"] for r in rows) <= 1e-5),
     ]
+    for r in rows:
+        name = "x".join(map(str, r["shape"]))
+        targets.append(_util.target(f"step.torch_over_fast_{name}", r["torch_over_fast"], ">= 2x",
+                                    r["torch_over_fast"] >= 2.0, "x"))
+        if r["shape"][3] >= 128:
+            targets.append(_util.target(f"step.matmul_fraction_{name}", 100 * r["matmul_fraction"],
+                                        ">= 50% of numpy's matmul rate",
+                                        r["matmul_fraction"] >= 0.5, "%"))
     _util.emit({"benchmark": "step", "mode": "smoke" if args.smoke else "quick" if args.quick else "full",
-                "matmul_gflops": matmul, "rows": rows, "load": _util.load_average(),
+                "matmul_gflops": statistics.median(r["matmul_gflops"] for r in rows), "rows": rows, "load": _util.load_average(),
                 "targets": targets})
 
 
