@@ -25,11 +25,18 @@ def data_csv(tmp_path_factory):
     return d, path, df
 
 
-def test_help_on_every_command():
-    for cmd in ([], ["demo"], ["fit"], ["sweep"], ["check-gradients"]):
-        r = _run(*cmd, "--help")
-        assert r.returncode == 0, r.stderr
-        assert "usage: rnnkit" in r.stdout
+@pytest.mark.parametrize("cmd", [[], ["demo"], ["fit"], ["sweep"], ["check-gradients"]])
+def test_help_on_every_command(cmd, capsys):
+    with pytest.raises(SystemExit) as e:
+        main([*cmd, "--help"])
+    assert e.value.code == 0
+    assert "usage: rnnkit" in capsys.readouterr().out
+
+
+def test_help_from_the_installed_entry_point():
+    r = _run("--help")
+    assert r.returncode == 0, r.stderr
+    assert "usage: rnnkit" in r.stdout
 
 
 def test_read_data_restores_time_index(data_csv):

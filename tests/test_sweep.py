@@ -20,7 +20,7 @@ import rnnkit
 from rnnkit import Config, DataError
 from rnnkit._plan import plan
 from rnnkit._sweep import _check_metric, sweep
-from tolerances import SAME_RUN
+from tolerances import OTHER_PROCESS, SAME_RUN
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -250,9 +250,10 @@ def test_process_workers_equal_the_serial_run(sunspots):
     pooled = sweep(sunspots, BASE, space, workers=2, progress=False)
     cols = [c for c in serial.table.columns if "_val_" in c or "_test_" in c
             or c.startswith(("val_", "test_"))]
-    # Same programs, same seeds; the workers only run XLA on one thread.
+    # Same programs, same seeds; the workers run XLA on one thread, so float32
+    # rounding may differ (common practice, no source: thread count changes blocking).
     pd.testing.assert_frame_equal(serial.table[cols + ["key", "status", "epochs"]],
-                                  pooled.table[cols + ["key", "status", "epochs"]], **SAME_RUN)
+                                  pooled.table[cols + ["key", "status", "epochs"]], **OTHER_PROCESS)
 
 
 def test_public_names():
