@@ -24,6 +24,7 @@ Choices, in one place:
 """
 from __future__ import annotations
 
+import contextlib
 from typing import NamedTuple, Optional
 
 import numpy as np
@@ -33,6 +34,21 @@ from . import _baseline_core as core
 from ._metrics import classification_metrics, mase_scale, regression_metrics
 
 SPLITS = ("train", "val", "test")
+
+
+def _one_blas_thread():
+    """A context running BLAS on one thread (threadpoolctl, when installed; else no change).
+
+    The linear AR's normal equations are small products ((N, p) x (p, p), p = T*I),
+    about 5 ms on one core. On a busy 2-core machine OpenBLAS's own threads made
+    the same product take 0.7 s (measured: the threads wait for each other).
+    threadpoolctl comes with scikit-learn; without it BLAS keeps its own setting.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
 
 
 class _Gather:
@@ -121,7 +137,8 @@ def fit_baselines(prepared, *, lam: float = core.RIDGE) -> Fitted:
     seg = core.segments(p.groups, len(p.targets))
     if p.classes is None:
         mean = p.targets[training_rows(p)].mean(axis=0, dtype=np.float64)  # (O,)
-        linear = core.fit_linear_ar(_inputs(p, "train"), _linear_targets(p), lam=lam)
+        with _one_blas_thread():
+            linear = core.fit_linear_ar(_inputs(p, "train"), _linear_targets(p), lam=lam)
         return Fitted(mean, None, linear, seg)
     freq = core.class_frequencies(p.targets[p.target_rows("train")], len(p.classes))
     return Fitted(None, freq, None, seg)
