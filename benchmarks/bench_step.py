@@ -20,6 +20,7 @@ TARGET lines read by ``run.py``, and a RESULT line (JSON).
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import sys
 import time
@@ -155,6 +156,12 @@ def main(argv=None):
               f"{row['torch_ms']:9.2f} {row['autodiff_over_fast']:13.2f}x {row['torch_over_fast']:10.2f}x "
               f"{gflops:8.1f} {matmul:7.0f} {100 * row['matmul_fraction']:8.1f}% {rel:14.1e}", flush=True)
 
+    load = _util.load_average()
+    if load and load[0] > (os.cpu_count() or 1):
+        # Under oversubscription numpy's and torch's threads lose far more than XLA's:
+        # the ratios then flatter rnnkit. Measure again on a quiet machine.
+        print(f"WARNING: load {load[0]} exceeds the {os.cpu_count()} cores; the torch and "
+              "numpy-matmul ratios are not trustworthy in this run", flush=True)
     large = rows[-1]
     name = "x".join(map(str, large["shape"]))
     targets = [
