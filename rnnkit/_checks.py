@@ -25,6 +25,11 @@ def fmt_time(v) -> str:
     return str(pd.Timestamp(v)) if isinstance(v, np.datetime64) else str(v)
 
 
+def plain_label(v):
+    """A row label for a message: 45 rather than numpy's np.int64(45)."""
+    return v.item() if isinstance(v, np.generic) else v
+
+
 def check_frame(df) -> None:
     """The frame itself: a DataFrame, string column names, not empty."""
     if not isinstance(df, pd.DataFrame):

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_time, numeric_values,
-                      read_times, require_column, resolve_columns, resolve_season)
+                      plain_label, read_times, require_column, resolve_columns, resolve_season)
 from ._config import Config
 from ._errors import DataError
 from ._split import PART_NAMES, assign_parts, check_windows, target_mask, window_starts
@@ -65,7 +65,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     n0 = len(df)
     rows = np.arange(n0, dtype=np.int64) if take is None else take
     boundary = None if gcode is None else _boundary(gcode)
-    row_label = lambda i: df.index[rows[i]]  # noqa: E731
+    row_label = lambda i: plain_label(df.index[rows[i]])  # noqa: E731
     group_of = None if gcode is None else (lambda i: gids[gcode[i]])
 
     # 2. time: sorted, no duplicates, regular when the season must be read from it
@@ -109,7 +109,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         codes = None if codes is None else codes[keep]
         split_codes = None if split_codes is None else split_codes[keep]
         boundary = None if gcode is None else _boundary(gcode)
-        row_label = lambda i: df.index[rows[i]]  # noqa: E731
+        row_label = lambda i: plain_label(df.index[rows[i]])  # noqa: E731
     n = len(rows)
 
     # 5. parts and window starts

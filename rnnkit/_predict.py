@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from ._checks import (_is_number_column, _not_numeric, check_finite, check_frame, check_order,
-                      fill_missing, numeric_values, read_times, require_column)
+                      fill_missing, numeric_values, plain_label, read_times, require_column)
 from ._config import Config
 from ._data import _boundary, _group_order
 from ._errors import DataError
@@ -99,7 +99,7 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
     take, gcode, gids = _group_order(df, cfg.group_column)
     rows = np.arange(len(df), dtype=np.int64) if take is None else take
     boundary = None if gcode is None else _boundary(gcode)
-    row_label = lambda i: df.index[rows[i]]  # noqa: E731
+    row_label = lambda i: plain_label(df.index[rows[i]])  # noqa: E731
     labels, ticks = read_times(df, cfg.time_column, take)
     check_order(ticks, labels, boundary, row_label,
                 None if gcode is None else (lambda i: gids[gcode[i]]), cfg.time_column or "index")

@@ -347,6 +347,14 @@ def test_bad_frames_are_refused_by_name_and_left_untouched(name, make, cfg, exc,
         assert "dtype str" in msg or "dtype object" in msg
 
 
+def test_rows_are_named_by_their_plain_label():
+    # rows regrouped by sequence: the message shows the caller's label 45, not np.int64(45)
+    df = _groups([20] * 6).assign(t=np.tile(np.arange(20.0), 6)).sample(frac=1.0, random_state=0)
+    msg = refused(lambda d: prepare(d, Config(**FAST, target="v", group_column="seq", time_column="t")),
+                  df, DataError, "not sorted", "sort_values")
+    assert "np." not in msg, msg
+
+
 def test_fit_refuses_like_prepare_and_leaves_the_frame_alone():
     df = _bad(series(), "x", np.inf)
     refused(lambda d: fit(d, Config(**FAST, target="y"), progress=False), df, DataError, "'x'", "infinite")
