@@ -177,7 +177,8 @@ class FitResult:
 
         Returns:
           DataFrame indexed by time (the time column or the frame's index), one row
-          per used row of the frame; a group column when there is one.
+          per used row of the frame; a group column when there is one (named
+          "sequence" when its own name is "actual", "predicted", "split"...).
           Regression: "actual"/"predicted" (one target) or "<target>_actual"/
           "<target>_predicted", in original units. Classification: "actual",
           "predicted" (labels) and "p_<class>" probabilities. Rows no window

@@ -244,14 +244,13 @@ def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, par
         r, v = per_row(np.asarray(rows), np.asarray(values, np.float64))
         pred[r] = v
         split[r] = label
-    cols = {}
-    if prepared.groups is not None:
-        cols[spec.config.group_column] = prepared.groups
-    if regression:
-        cols.update(_regression_columns(actual, pred, spec.target_names))
-    else:
-        cols.update(_class_columns(actual, pred, spec.classes))
+    cols = _regression_columns(actual, pred, spec.target_names) if regression else \
+        _class_columns(actual, pred, spec.classes)
     cols["split"] = split
+    if prepared.groups is not None:
+        # the sequence ids go first, under their own name unless an output column has it
+        name = spec.config.group_column
+        cols = {("sequence" if name in cols else name): prepared.groups, **cols}
     index = _index(prepared, spec) if labels is None else labels.rename(spec.index_name)
     return pd.DataFrame(cols, index=index)
 
