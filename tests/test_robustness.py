@@ -241,6 +241,17 @@ def test_many_sequences_of_unequal_length_and_a_split_column():
     assert all(len(s) <= 1 for s in got)  # a sequence's predictions come from one part
 
 
+@pytest.mark.parametrize("name", ["split", "actual", "predicted"])
+def test_a_sequence_column_named_like_an_output_column_keeps_its_ids(name):
+    df = _groups([12] * 8).rename(columns={"seq": name})
+    r, pred = fit_untouched(df, target="v", group_column=name, window=3)
+    assert {"actual", "predicted", "split"} <= set(pred.columns)
+    assert set(pred["split"].dropna()) == {"train", "val", "test"}
+    np.testing.assert_allclose(pred["actual"].to_numpy(np.float64), df["v"].to_numpy())
+    ids = pred[name if name not in ("actual", "predicted", "split") else "sequence"]
+    assert (ids.to_numpy() == df[name].to_numpy()).all()
+
+
 def test_whole_sequence_classification_on_the_demo_and_a_new_frame():
     df = rnnkit.datasets.packaging_line_faults(n_cycles=24, steps=(10, 14), seed=0)
     cfg = rnnkit.datasets.suggested_config("packaging_line_faults").replace(epochs=1, hidden=3)
