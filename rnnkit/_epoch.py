@@ -238,10 +238,10 @@ def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, s
         return _CACHE[key]
 
 
-def _build_init(optimizer, clipping, dtype, n_in, hidden, n_out):
+def _build_init(optimizer, clipping, dtype, scheme, n_in, hidden, n_out):
     factory = make_optimizer(optimizer, clipping, dtype)
 
-    def init(seed, scheme, scale, hyper):
+    def init(seed, scale, hyper):
         # The seed's key is split in two: the first half initialises, the second shuffles.
         k_init, k_shuffle = jax.random.split(jax.random.key(seed))
         params = init_elman_traceable(k_init, n_in, hidden, n_out, scheme, scale, dtype)
@@ -250,21 +250,22 @@ def _build_init(optimizer, clipping, dtype, n_in, hidden, n_out):
     return jax.jit(init, compiler_options=_COMPILER_OPTIONS)
 
 
-def init_program(*, optimizer, clipping, dtype, n_in, hidden, n_out):
-    """The cached jitted ``f(seed, scheme, scale, hyper) -> (params, opt_state, key)``.
+def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out):
+    """The cached jitted ``f(seed, scale, hyper) -> (params, opt_state, key)``.
 
     The initial training state as ONE compiled program: done op by op, its
     ~30 small eager operations each compiled once per process (about 1.5 s).
-    Seed (() int32), init scheme (() int32 index into INITS), recurrent scale
-    and the optimizer's hyperparameters (``_optim.hyperparams``) are data;
-    ``key`` is the shuffling key. Not counted by ``compile_count`` (it is no
-    training or evaluation program).
+    Seed (() int32), recurrent scale and the optimizer's hyperparameters
+    (``_optim.hyperparams``) are data; the init scheme is static (each scheme
+    compiles only its own draw); ``key`` is the shuffling key. Not counted by
+    ``compile_count`` (it is no training or evaluation program).
     """
-    key = ("init", optimizer, bool(clipping), np.dtype(dtype).name, int(n_in), int(hidden), int(n_out))
+    key = ("init", optimizer, bool(clipping), np.dtype(dtype).name, str(scheme), int(n_in),
+           int(hidden), int(n_out))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build_init(optimizer, bool(clipping), np.dtype(dtype), int(n_in),
-                                      int(hidden), int(n_out))
+            _CACHE[key] = _build_init(optimizer, bool(clipping), np.dtype(dtype), str(scheme),
+                                      int(n_in), int(hidden), int(n_out))
         return _CACHE[key]
 
 

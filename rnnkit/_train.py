@@ -151,16 +151,17 @@ def initial_state(prepared, config: Config):
     """The training state ``train`` starts from: (params, opt_state, shuffling key).
 
     One cached compiled program (``_epoch.init_program``) makes all of it; the
-    seed, init scheme, recurrent scale and optimizer hyperparameters are data.
+    seed, recurrent scale and optimizer hyperparameters are data.
     """
     dtype = np.dtype(config.dtype)
     name, clipping = program_key(config.optimizer, config.clip)
-    program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype,
+    if config.init not in INITS:
+        raise ValueError(f"`config.init` (={config.init!r}) is unknown; use one of {INITS}")
+    program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype, scheme=config.init,
                                   n_in=prepared.n_inputs, hidden=config.hidden,
                                   n_out=prepared.n_outputs)
     hyper = hyperparams(config.optimizer, config.lr, config.clip, config.weight_decay, dtype)
-    return program(np.asarray(config.seed, np.int32), np.asarray(INITS.index(config.init), np.int32),
-                   np.asarray(config.recurrent_scale, dtype), hyper)
+    return program(np.asarray(config.seed, np.int32), np.asarray(config.recurrent_scale, dtype), hyper)
 
 
 def initial_params(prepared, config: Config) -> dict:
