@@ -251,6 +251,9 @@ def resolve_season(season, labels, ticks, boundary, row_label) -> Tuple[Optional
                     "number of steps or None (and resample to a regular grid if the steps should be equal)")
 
 
+_LARGEST = 1e150  # |value| above this: its square is near float64's limit (1.8e308)
+
+
 def check_finite(v: np.ndarray, name: str, policy: str, row_label, time_label) -> int:
     """Refuse inf always and NaN under the "error" policy; return the NaN count."""
     inf = np.isinf(v)
@@ -259,6 +262,14 @@ def check_finite(v: np.ndarray, name: str, policy: str, row_label, time_label) -
         raise DataError(f"column {name!r} holds {int(inf.sum())} infinite value(s), first at row "
                         f"{row_label(i)!r}{time_label(i)}; replace them (for example with NaN and a "
                         "`missing` policy) before prepare()")
+    # Squares of larger values overflow float64 in the scaler, the metrics and the
+    # linear baseline; refuse them here, where the column can still be named.
+    big = np.abs(v) > _LARGEST
+    if big.any():
+        i = int(np.argmax(big))
+        raise DataError(f"column {name!r} holds {int(big.sum())} value(s) beyond {_LARGEST:.0e} in size, "
+                        f"first at row {row_label(i)!r}{time_label(i)} (={float(v[i]):.3g}); their "
+                        "squares overflow: rescale the column (divide it by a power of ten) first")
     nan = np.isnan(v)
     n = int(nan.sum())
     if n == len(v):

@@ -830,3 +830,15 @@ def test_predict_on_any_new_frame_answers_or_refuses_cleanly(fitted, n, y, x, in
         assert len(pred) <= n and pred["predicted"].notna().any()
         assert np.isfinite(pred["predicted"].dropna().to_numpy(np.float64)).all()
     pd.testing.assert_frame_equal(df, before)
+
+
+def test_values_too_large_to_square_are_refused_naming_the_column():
+    # float64 overflows near 1.8e308 (IEEE 754, common practice, no source), so squares
+    # of values beyond 1e154 are inf; prepare refuses them before the scaler sees them.
+    idx = pd.date_range("2024-01-01", periods=200, freq="h")
+    df = pd.DataFrame({"y": np.sin(np.arange(200.0)), "x": np.linspace(0, 1, 200)}, index=idx)
+    df.loc[idx[50], "x"] = 3e200
+    before = df.copy(deep=True)
+    with pytest.raises(rnnkit.DataError, match="'x'.*rescale"):
+        rnnkit.prepare(df, rnnkit.Config(target="y", window=8))
+    pd.testing.assert_frame_equal(df, before)
