@@ -26,7 +26,8 @@ REGRESSION_METRICS = ("mae", "rmse", "mase", "r2")
 CLASSIFICATION_METRICS = ("accuracy", "balanced_accuracy", "log_loss")
 
 
-def _resolve_config(config) -> Config:
+def resolve_config(config) -> Config:
+    """A Config from a Config, a dict of its fields, or None (the defaults)."""
     if config is None:
         return Config()
     if isinstance(config, Config):
@@ -249,7 +250,7 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
       >>> result = rnnkit.fit(df, rnnkit.Config(target="load_kw", window=24, epochs=20))
       >>> result.metrics.loc[["rnn", "persistence"], "test_rmse"]
     """
-    cfg = _resolve_config(config)
+    cfg = resolve_config(config)
     prepared = prepare(df, cfg)
     outcome = train(prepared, prepared.config, shapes=shapes, progress=progress, stop=stop,
                     on_epoch=on_epoch)

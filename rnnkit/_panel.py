@@ -23,7 +23,7 @@ import pandas as pd
 from ._config import Config
 from ._errors import DataError
 from ._export import load_config, save_config
-from ._fit import fit
+from ._fit import fit, resolve_config
 from ._panel_controls import build_controls, read_config, read_space, write_config
 from ._panel_views import FigureViews
 from ._sweep import sweep
@@ -65,11 +65,8 @@ class Panel:
         if not isinstance(df, pd.DataFrame):
             raise TypeError(f"panel(df) needs a pandas DataFrame, got {type(df).__name__}; "
                             "for a Series use series.to_frame()")
-        if config is not None and not isinstance(config, Config):
-            raise TypeError(f"`config` (={type(config).__name__}) must be an rnnkit.Config or None; "
-                            "for a JSON file use rnnkit.load_config(path)")
         self._df = df  # read only: fit and sweep copy what they change
-        self._base = config if config is not None else Config()
+        self._base = resolve_config(config)  # a Config, a dict of its fields, or None, as fit takes
         self.controls = build_controls(df, self._base)
         self.result = None
         self.sweep_result = None

@@ -66,8 +66,10 @@ def test_panel_returns_the_widget_with_its_panel(demo, start):
     assert w.panel.controls["time_column"].layout.display == "none"  # a DatetimeIndex has the time
     with pytest.raises(TypeError, match="DataFrame"):
         rnnkit.panel(demo["load_kw"])
+    # a dict of Config fields is taken as fit() takes it; anything else is refused
+    assert rnnkit.panel(demo, start.to_dict()).panel.config() == start
     with pytest.raises(TypeError, match="config"):
-        rnnkit.panel(demo, {"target": "load_kw"})
+        rnnkit.panel(demo, 5)
 
 
 def test_panel_leaves_the_frame_alone(demo, trained):
