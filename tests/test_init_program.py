@@ -14,7 +14,8 @@ from tolerances import EXACT32, EXACT64
 
 def _leaves(tree):
     """Leaves as numpy arrays (key arrays as their raw data), with the tree structure."""
-    as_data = lambda x: jax.random.key_data(x) if jax.dtypes.issubdtype(x.dtype, jax.dtypes.prng_key) else x
+    def as_data(x):
+        return jax.random.key_data(x) if jax.dtypes.issubdtype(x.dtype, jax.dtypes.prng_key) else x
     return jax.tree.structure(tree), [np.asarray(v) for v in jax.tree.leaves(jax.tree.map(as_data, tree))]
 
 
