@@ -179,6 +179,8 @@ def load_fit(path, df=None):
     from ._fit import FitResult, frame_actuals
     from ._predict import zoned_labels
 
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"`path` must be a folder path (str or pathlib.Path), got {type(path).__name__}")
     path = Path(path)
     if not _is_fit_folder(path):
         raise ValueError(f"`path` ({str(path)!r}) is not an rnnkit fit folder (config.json with format "
