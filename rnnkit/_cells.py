@@ -171,6 +171,14 @@ CELLS: Dict[str, Cell] = {
 }
 
 
+def _is_key(key) -> bool:
+    """A typed key (jax.random.key) or a raw uint32 key of shape (2,) (jax.random.PRNGKey)."""
+    if isinstance(key, jax.Array) and jnp.issubdtype(key.dtype, jax.dtypes.prng_key):
+        return True
+    dtype, shape = getattr(key, "dtype", None), getattr(key, "shape", None)
+    return dtype == jnp.uint32 and tuple(shape) == (2,)
+
+
 def init_params(key, n_in: int, n_hidden: int, n_out: int, *, scheme: str = "glorot",
                 recurrent_scale: float = 1.0, dtype=jnp.float32, cell: str = "elman") -> dict:
     """Initial parameters for a network of the given sizes.
@@ -194,5 +202,8 @@ def init_params(key, n_in: int, n_hidden: int, n_out: int, *, scheme: str = "glo
     """
     if cell not in CELLS:
         raise ValueError(f"`cell` (={cell!r}) is unknown; use one of {sorted(CELLS)}")
+    if not _is_key(key):
+        raise TypeError(f"`key` (={key!r}) must be a jax.random key; make one with "
+                        "jax.random.key(seed)")
     return CELLS[cell].init(key, n_in, n_hidden, n_out, scheme=scheme,
                             recurrent_scale=recurrent_scale, dtype=dtype)

@@ -46,3 +46,8 @@ def test_wrong_types_give_type_errors_not_tracebacks_from_inside(call, tmp_path,
         call()
     assert "`" in str(info.value) or "needs" in str(info.value)  # names the argument
     assert list(tmp_path.iterdir()) == []  # nothing written
+
+
+def test_init_params_refuses_a_seed_where_a_key_belongs():
+    with pytest.raises(TypeError, match="`key`.*jax.random.key"):
+        rnnkit.init_params(0, 2, 3, 1)
