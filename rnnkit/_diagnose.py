@@ -265,7 +265,12 @@ def diagnose(params, prepared, *, split: Optional[str] = None) -> Diagnostics:
         states, share = _all_windows(p, prepared, split, act)
 
         def states_of(sp, i):
-            count = len(prepared.starts[sp]) if sp in prepared.starts else 0
+            if sp not in prepared.starts:
+                raise ValueError(f"`split` (={sp!r}) is not a split; use one of {sorted(prepared.starts)}")
+            count = len(prepared.starts[sp])
+            if count == 0:
+                raise ValueError(f"split {sp!r} has no windows (its share of `split` is 0 or too "
+                                 "short for one window); ask for another split")
             if not 0 <= i < count:
                 raise ValueError(f"window `i` (={i}) is out of range: split {sp!r} has {count} "
                                  f"window(s), numbered 0..{count - 1}")
