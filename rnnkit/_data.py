@@ -292,6 +292,14 @@ def label_array(labels: list) -> np.ndarray:
 def _scaled(values, names, scaler, dtype) -> np.ndarray:
     """(R, len(names)) array in ``dtype``, filled column by column (no (R, C) float64 temporary)."""
     out = np.empty((len(values[names[0]]), len(names)), dtype=dtype)
+    limit = np.finfo(dtype).max
     for j, c in enumerate(names):
-        out[:, j] = scaler.transform(values[c], [c])
+        col = scaler.transform(values[c], [c])
+        big = np.abs(col) > limit
+        if big.any():  # only unscaled data gets here: scaled values are small
+            i = int(np.argmax(big))
+            raise DataError(f"column {c!r} holds values too large for {np.dtype(dtype).name} "
+                            f"(first at used row {i}, ={float(col[i]):.3g}); use `scale`='standard' "
+                            "or 'minmax', or `dtype`='float64'")
+        out[:, j] = col
     return out

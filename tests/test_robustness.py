@@ -842,3 +842,14 @@ def test_values_too_large_to_square_are_refused_naming_the_column():
     with pytest.raises(rnnkit.DataError, match="'x'.*rescale"):
         rnnkit.prepare(df, rnnkit.Config(target="y", window=8))
     pd.testing.assert_frame_equal(df, before)
+
+
+def test_unscaled_values_beyond_float32_are_refused():
+    # float32's largest value is about 3.4e38 (IEEE 754, common practice, no source).
+    idx = pd.date_range("2024-01-01", periods=200, freq="h")
+    df = pd.DataFrame({"y": np.sin(np.arange(200.0)), "x": np.linspace(0, 1, 200)}, index=idx)
+    df.loc[idx[20], "x"] = 1e40
+    with pytest.raises(rnnkit.DataError, match="'x'.*float32"):
+        rnnkit.prepare(df, rnnkit.Config(target="y", window=8, scale="none"))
+    # float64 holds it
+    assert rnnkit.prepare(df, rnnkit.Config(target="y", window=8, scale="none", dtype="float64"))
