@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 from pathlib import Path
 from typing import Optional, Sequence
@@ -203,13 +202,9 @@ def cmd_check_gradients(args) -> int:
 
 
 def _atomic_csv(frame, path: Path) -> None:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        frame.to_csv(tmp, index=False)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
+    from ._atomic import write_text
+
+    write_text(path, frame.to_csv(index=False))
 
 
 # --- parser -----------------------------------------------------------------

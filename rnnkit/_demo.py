@@ -1,9 +1,9 @@
 """`rnnkit demo`: a small sweep on the invented cold-storage load data, with a report."""
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
+from ._atomic import write_text
 from ._config import Config
 from . import datasets
 
@@ -34,10 +34,7 @@ def run_demo(out, *, workers: int = 1, progress: bool = True, quick: bool = Fals
     df, base, space = demo_setup(quick)
     result = sweep(df, base, space, seeds=1, workers=workers, store=str(out / "runs.db"),
                    progress=progress)
-    table = result.table
-    tmp = out / f".results.csv.{os.getpid()}.tmp"
-    table.to_csv(tmp, index=False)
-    os.replace(tmp, out / "results.csv")
+    write_text(out / "results.csv", result.table.to_csv(index=False))
     result.export(out / "best-config.json")
     best = fit(df, result.best(), progress=False)
     write_report(out / "report.html", best, sweep_result=result,

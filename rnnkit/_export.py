@@ -25,7 +25,6 @@ import json
 import math
 import os
 import platform
-import tempfile
 import warnings
 from pathlib import Path
 from typing import Any, Optional, Union
@@ -36,6 +35,7 @@ from jsonschema import Draft202012Validator, validators
 from jsonschema.exceptions import best_match
 from pandas.api import types as ptypes
 
+from ._atomic import write_text
 from ._checks import require_column, resolve_columns
 from ._config import Config
 
@@ -250,19 +250,7 @@ def write_document(doc: dict, path) -> Path:
         raise ValueError(f"`path` ({str(path)!r}) is a folder; give a file name, "
                          f"for example {str(path / 'experiment.json')!r}")
     path.parent.mkdir(parents=True, exist_ok=True)  # as FitResult.save does
-    text = json.dumps(doc, indent=2, allow_nan=False) + "\n"
-    fd, tmp = tempfile.mkstemp(dir=path.parent or ".", prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
+    return write_text(path, json.dumps(doc, indent=2, allow_nan=False) + "\n")
 
 
 def _no_constant(name):

@@ -4,12 +4,12 @@ from __future__ import annotations
 import base64
 import html
 import io
-import os
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Optional
 
 import pandas as pd
+
+from ._atomic import write_text
 
 _CSS = """
 body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 76rem; color: #1d2430; }
@@ -109,11 +109,4 @@ def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report
                      f"<figcaption>{html.escape(_CAPTIONS.get(name, name))}</figcaption></figure>")
     parts.append("<h2>Configuration</h2><pre>" + html.escape(result.config.to_json()) + "</pre>")
     parts.append("</body></html>")
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_text("\n".join(parts), encoding="utf-8")
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    return write_text(path, "\n".join(parts))
