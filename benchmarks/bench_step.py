@@ -5,11 +5,20 @@
     python benchmarks/bench_step.py --smoke    # tiny shapes: checks that it runs (numbers meaningless)
 
 A training step is forward + BPTT + Adam on a many-to-one regression loss
-(tanh state, O = 1), float32, jitted as one program for JAX:
+(tanh state, O = 1), float32, over one minibatch (B, T, I):
 
     fast     jax.value_and_grad(rnnkit.loss)          (custom-VJP BPTT)
     autodiff jax.value_and_grad(rnnkit._model._loss_autodiff)   (autodiff of lax.scan)
     torch    torch.nn.RNN + torch.nn.Linear + MSELoss + torch.optim.Adam
+
+Each side runs STEPS steps over STEPS different minibatches, timed together and
+divided by STEPS. The JAX steps run as rnnkit's trainer runs them: inside one
+compiled loop (``lax.fori_loop``; rnnkit's epoch program is a while loop over
+minibatches). torch runs its usual Python loop. The ``call ms`` column is the
+fast step jitted alone and called once per step, for comparison: at large
+shapes each call takes fresh pages from the kernel for its (T, B, H) buffers
+(measured: about 19,000 minor page faults and 40 ms of system CPU time per call
+at (128, 200, 8, 256)), which a loop inside one program pays once.
 
 Achieved GFLOP/s counts the matrix products of one step,
 6 T B H^2 + 4 T B I H (+ the output layer), and is set against numpy's float32
@@ -34,6 +43,7 @@ import _util  # noqa: E402
 
 SHAPES = [(1, 100, 1, 8), (16, 50, 1, 16), (64, 50, 3, 32), (64, 100, 3, 128), (128, 200, 8, 256)]
 SMOKE_SHAPES = [(1, 5, 1, 4), (4, 6, 2, 8)]
+STEPS = 8  # minibatches per timed loop
 
 
 def timed(fn, min_seconds, min_reps, max_reps):
@@ -59,60 +69,82 @@ def step_flops(B, T, I, H, O=1):
     return 6 * T * B * H * H + 4 * T * B * I * H + 4 * B * H * O
 
 
+def _batches(B, T, I):
+    rng = np.random.default_rng(0)
+    return (rng.standard_normal((STEPS, B, T, I), dtype=np.float32),
+            rng.standard_normal((STEPS, B, 1), dtype=np.float32))
+
+
 def jax_steps(B, T, I, H):
-    """Jitted (fast, autodiff) training steps and their arguments."""
+    """Runners of STEPS training steps: fast and autodiff in one compiled loop, fast per call."""
     import jax
     import optax
+    from jax import lax
 
     import rnnkit
     from rnnkit import _model
 
-    rng = np.random.default_rng(0)
-    xs = jax.numpy.asarray(rng.standard_normal((B, T, I), dtype=np.float32))
-    ys = jax.numpy.asarray(rng.standard_normal((B, 1), dtype=np.float32))
+    xs_np, ys_np = _batches(B, T, I)
+    xs, ys = jax.numpy.asarray(xs_np), jax.numpy.asarray(ys_np)
     opt = optax.adam(1e-3)
+    kw = dict(activation="tanh", task="regression", mode="many-to-one")
 
-    def make(loss_fn):
-        @jax.jit
-        def step(params, opt_state, xs, ys):
-            value, grads = jax.value_and_grad(loss_fn)(params, xs, ys, activation="tanh",
-                                                       task="regression", mode="many-to-one")
-            updates, opt_state = opt.update(grads, opt_state, params)
-            return optax.apply_updates(params, updates), opt_state, value
+    def step(loss_fn, params, opt_state, x, y):
+        value, grads = jax.value_and_grad(loss_fn)(params, x, y, **kw)
+        updates, opt_state = opt.update(grads, opt_state, params)
+        return optax.apply_updates(params, updates), opt_state, value
+
+    def runner(loss_fn, in_loop):
         params = rnnkit.init_params(jax.random.key(0), I, H, 1, scheme="orthogonal")
         state = [params, opt.init(params)]
+        if in_loop:
+            @jax.jit
+            def steps(params, opt_state, xs, ys):
+                def body(k, carry):
+                    params, opt_state, total = carry
+                    params, opt_state, value = step(loss_fn, params, opt_state, xs[k], ys[k])
+                    return params, opt_state, total + value
+                return lax.fori_loop(0, STEPS, body, (params, opt_state, jax.numpy.float32(0)))
 
-        def run():
-            state[0], state[1], v = step(state[0], state[1], xs, ys)
-            v.block_until_ready()
+            def run():
+                state[0], state[1], v = steps(state[0], state[1], xs, ys)
+                v.block_until_ready()
+        else:
+            one = jax.jit(lambda p, s, x, y: step(loss_fn, p, s, x, y))
+
+            def run():
+                for k in range(STEPS):
+                    state[0], state[1], v = one(state[0], state[1], xs[k], ys[k])
+                v.block_until_ready()
         return run
 
     # the two gradients at the starting point, to show they agree
     params = rnnkit.init_params(jax.random.key(0), I, H, 1, scheme="orthogonal")
-    kw = dict(activation="tanh", task="regression", mode="many-to-one")
-    g1 = jax.jit(jax.grad(lambda p: rnnkit.loss(p, xs, ys, **kw)))(params)
-    g2 = jax.jit(jax.grad(lambda p: _model._loss_autodiff(p, xs, ys, **kw)))(params)
+    g1 = jax.jit(jax.grad(lambda p: rnnkit.loss(p, xs[0], ys[0], **kw)))(params)
+    g2 = jax.jit(jax.grad(lambda p: _model._loss_autodiff(p, xs[0], ys[0], **kw)))(params)
     rel = max(float(np.max(np.abs(g1[k] - g2[k])) / max(np.max(np.abs(g2[k])), 1e-30)) for k in g1)
-    return make(rnnkit.loss), make(_model._loss_autodiff), rel
+    return (runner(rnnkit.loss, True), runner(_model._loss_autodiff, True),
+            runner(rnnkit.loss, False), rel)
 
 
 def torch_step(B, T, I, H):
+    """Runner of STEPS torch training steps over the same minibatches."""
     import torch
 
     torch.manual_seed(0)
     rnn = torch.nn.RNN(I, H, nonlinearity="tanh", batch_first=True)
     lin = torch.nn.Linear(H, 1)
     opt = torch.optim.Adam(list(rnn.parameters()) + list(lin.parameters()), lr=1e-3)
-    rng = np.random.default_rng(0)
-    xs = torch.from_numpy(rng.standard_normal((B, T, I), dtype=np.float32))
-    ys = torch.from_numpy(rng.standard_normal((B, 1), dtype=np.float32))
+    xs_np, ys_np = _batches(B, T, I)
+    xs, ys = torch.from_numpy(xs_np), torch.from_numpy(ys_np)
     mse = torch.nn.MSELoss()
 
     def run():
-        opt.zero_grad()
-        out = lin(rnn(xs)[0][:, -1])
-        mse(out, ys).backward()
-        opt.step()
+        for k in range(STEPS):
+            opt.zero_grad()
+            out = lin(rnn(xs[k])[0][:, -1])
+            mse(out, ys[k]).backward()
+            opt.step()
     return run
 
 
@@ -134,25 +166,28 @@ def main(argv=None):
     matmul_reps = 3 if args.smoke else 20
     print(f"jax {jax.__version__}, torch {torch.__version__ if torch else 'absent'}, "
           f"load {_util.load_average()}")
-    print(f"{'B,T,I,H':>18} {'fast ms':>9} {'autodiff ms':>12} {'torch ms':>9} {'autodiff/fast':>14} "
+    print(f"{'B,T,I,H':>18} {'fast ms':>9} {'autodiff ms':>12} {'call ms':>8} {'torch ms':>9} {'autodiff/fast':>14} "
           f"{'torch/fast':>11} {'GFLOP/s':>8} {'matmul':>7} {'% matmul':>9} {'grad rel diff':>14}")
     rows = []
     for B, T, I, H in shapes:
-        fast, plain, rel = jax_steps(B, T, I, H)
+        fast, plain, fast_call, rel = jax_steps(B, T, I, H)
         matmul_before = numpy_matmul_gflops(matmul_reps)
-        t_fast = timed(fast, min_s, min_reps, max_reps)
-        t_plain = timed(plain, min_s, min_reps, max_reps)
-        t_torch = timed(torch_step(B, T, I, H), min_s, min_reps, max_reps) if torch else float("nan")
+        t_fast = timed(fast, min_s, min_reps, max_reps) / STEPS
+        t_plain = timed(plain, min_s, min_reps, max_reps) / STEPS
+        t_call = timed(fast_call, min_s, min_reps, max_reps) / STEPS
+        t_torch = (timed(torch_step(B, T, I, H), min_s, min_reps, max_reps) / STEPS if torch
+                   else float("nan"))
         # numpy's rate just before and just after this shape's timings, averaged
         matmul = (matmul_before + numpy_matmul_gflops(matmul_reps)) / 2
         gflops = step_flops(B, T, I, H) / t_fast / 1e9
         row = {"shape": [B, T, I, H], "fast_ms": 1e3 * t_fast, "autodiff_ms": 1e3 * t_plain,
+               "fast_call_ms": 1e3 * t_call, "torch_over_fast_call": t_torch / t_call,
                "torch_ms": 1e3 * t_torch, "autodiff_over_fast": t_plain / t_fast,
                "torch_over_fast": t_torch / t_fast, "gflops": gflops,
                "matmul_gflops": matmul, "matmul_fraction": gflops / matmul, "grad_rel_diff": rel,
                "load": _util.load_average()}
         rows.append(row)
-        print(f"{str((B, T, I, H)):>18} {row['fast_ms']:9.2f} {row['autodiff_ms']:12.2f} "
+        print(f"{str((B, T, I, H)):>18} {row['fast_ms']:9.2f} {row['autodiff_ms']:12.2f} {row['fast_call_ms']:8.2f} "
               f"{row['torch_ms']:9.2f} {row['autodiff_over_fast']:13.2f}x {row['torch_over_fast']:10.2f}x "
               f"{gflops:8.1f} {matmul:7.0f} {100 * row['matmul_fraction']:8.1f}% {rel:14.1e}", flush=True)
 

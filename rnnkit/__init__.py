@@ -9,7 +9,6 @@ from ._model import predict_classes as predict_classes
 from ._gradcheck import check_gradients as check_gradients
 from . import reference as reference
 from . import datasets as datasets
-from . import plots as plots
 
 __version__ = "0.1.0"
 from ._data import prepare as prepare
@@ -24,10 +23,31 @@ from ._fit_io import load_fit as load_fit
 from ._diagnose import Diagnostics as Diagnostics
 from ._diagnose import loss_surface as loss_surface
 from ._diagnose import loss_slice as loss_slice
-from ._panel import panel as panel
 from ._sweep import sweep as sweep
 from ._sweep import SweepResult as SweepResult
 from ._plan import plan as plan
 from ._runner import run as run
 from ._store import RunStore as RunStore
 from ._train import compile_count as compile_count
+
+
+# matplotlib and ipywidgets load on first use of `rnnkit.plots` or `rnnkit.panel`, not
+# on `import rnnkit`: about 0.5 s that a script, the command line or a sweep's worker
+# process never needs.
+_LAZY = {"plots": ("rnnkit.plots", None), "panel": ("rnnkit._panel", "panel")}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        module, attr = _LAZY[name]
+        value = importlib.import_module(module)
+        value = value if attr is None else getattr(value, attr)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'rnnkit' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))

@@ -31,8 +31,6 @@ from typing import Any, Optional, Union
 
 import numpy as np
 import pandas as pd
-from jsonschema import Draft202012Validator, validators
-from jsonschema.exceptions import best_match
 from pandas.api import types as ptypes
 
 from ._atomic import write_text
@@ -61,17 +59,20 @@ def _strict_int(checker, x) -> bool:
     return isinstance(x, int) and not isinstance(x, bool)
 
 
-_Validator = validators.extend(
-    Draft202012Validator,
-    type_checker=Draft202012Validator.TYPE_CHECKER.redefine("integer", _strict_int))
-
-
 @functools.lru_cache(maxsize=None)
 def _validator(part: str):
+    # jsonschema is imported here, when a document is first checked: importing it takes
+    # about 1.4 s here (its format checkers), which every `import rnnkit` and every sweep
+    # worker process would otherwise pay.
+    from jsonschema import Draft202012Validator, validators
+
+    strict = validators.extend(
+        Draft202012Validator,
+        type_checker=Draft202012Validator.TYPE_CHECKER.redefine("integer", _strict_int))
     s = schema()
     if part == "config":  # the config object alone, with the same $defs
         s = {"$schema": s["$schema"], "$defs": s["$defs"], "$ref": "#/$defs/config"}
-    return _Validator(s)
+    return strict(s)
 
 
 def validate(doc: Any, *, part: str = "document", where: str = "document") -> None:
@@ -89,6 +90,8 @@ def validate(doc: Any, *, part: str = "document", where: str = "document") -> No
         raise ValueError(f"`part` (={part!r}) must be 'document' or 'config'")
     errors = list(_validator(part).iter_errors(doc))
     if errors:
+        from jsonschema.exceptions import best_match
+
         e = best_match(errors)
         more = f" (and {len(errors) - 1} more problem(s))" if len(errors) > 1 else ""
         raise ValueError(f"{where}: {e.json_path}: {e.message}{more}; fix that value "

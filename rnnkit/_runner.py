@@ -14,6 +14,8 @@ import contextlib
 import datetime as _dt
 import multiprocessing
 import os
+import shutil
+import tempfile
 import threading
 import time
 from typing import Callable, Dict, List, Optional, Sequence
@@ -54,12 +56,13 @@ def worker_env(base: Optional[dict] = None) -> dict:
 
 
 @contextlib.contextmanager
-def _spawn_env():
-    """Hold WORKER_ENV in os.environ while the pool spawns a child, so the child
-    starts with it (spawned children copy the parent's environment at start)."""
+def _spawn_env(extra: Optional[dict] = None):
+    """Hold WORKER_ENV (and `extra`) in os.environ while the pool spawns a child, so the
+    child starts with it (spawned children copy the parent's environment at start)."""
+    env = {**worker_env(), **(extra or {})}
     with _ENV_LOCK:
-        saved = {k: os.environ.get(k) for k in WORKER_ENV}
-        os.environ.update(worker_env())
+        saved = {k: os.environ.get(k) for k in env}
+        os.environ.update(env)
         try:
             yield
         finally:
@@ -74,6 +77,45 @@ def _worker_init() -> None:
     # A no-op when the pool spawned us under _spawn_env; keeps later imports single-threaded otherwise.
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
+
+
+def _shared_compile_cache() -> tuple:
+    """(environment, directory to remove afterwards) for a pool whose workers share compiled programs.
+
+    Every worker process compiles its own programs; with jax's persistent
+    compilation cache in one directory, a program one worker has compiled is
+    loaded from disk by the others (measured: a first fit of 4.2 s took 1.6 s
+    with the program on disk). The directory lives as long as the pool. A cache
+    the caller has set up (JAX_COMPILATION_CACHE_DIR) is used as it is.
+    """
+    if os.environ.get("JAX_COMPILATION_CACHE_DIR"):
+        return {}, None
+    path = tempfile.mkdtemp(prefix="rnnkit-programs-")
+    return {"JAX_COMPILATION_CACHE_DIR": path,
+            "JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS": "0",
+            "JAX_PERSISTENT_CACHE_MIN_ENTRY_SIZE_BYTES": "0"}, path
+
+
+def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
+    """What tells two runs' training programs apart (parameter shapes, padded data shapes,
+    static choices); runs in one group share a program."""
+    return (config.hidden, config.optimizer, config.batch_size, config.clip is None, config.init,
+            config.dtype, tuple(sorted((shapes or {}).items())))
+
+
+def interleave(tasks: Sequence[tuple], configs: Sequence[Config]) -> list:
+    """(plan index, shapes) tasks reordered one per program group in turn, groups in order of
+    first appearance: workers starting together compile different programs, and with a
+    shared compilation cache each program is compiled about once."""
+    groups: Dict[tuple, list] = {}
+    for i, s in tasks:
+        groups.setdefault(_program_group(configs[i], s), []).append((i, s))
+    queues = list(groups.values())
+    out = []
+    while queues:
+        out += [q.pop(0) for q in queues]
+        queues = [q for q in queues if q]
+    return out
 
 
 def process_pool(workers: int) -> cf.ProcessPoolExecutor:
@@ -268,15 +310,16 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
     """Submit runs to a pool (ours) or the caller's executor; store each result as it comes."""
     own = executor is None
     pool = process_pool(workers) if own else executor
+    cache_env, cache_dir = _shared_compile_cache() if own else ({}, None)
     limit = workers if (own or workers > 1) else max(len(tasks), 1)
-    pending = list(tasks)
+    pending = interleave(tasks, configs)
     running: Dict[cf.Future, int] = {}
     ok = False
     try:
         while pending or running:
             while pending and len(running) < limit and not (stop is not None and stop.is_set()):
                 i, s = pending.pop(0)
-                with _spawn_env() if own else contextlib.nullcontext():
+                with _spawn_env(cache_env) if own else contextlib.nullcontext():
                     running[pool.submit(remote_run, df, configs[i], s, x64, os.getpid())] = i
             if not running:
                 break
@@ -295,3 +338,5 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
                 f.cancel()
         if own:
             pool.shutdown(wait=ok, cancel_futures=True)
+        if cache_dir is not None:
+            shutil.rmtree(cache_dir, ignore_errors=True)

@@ -17,7 +17,7 @@ import statsmodels.api as sm
 from scipy import stats
 
 import rnnkit
-from rnnkit import Config, DataError
+from rnnkit import Config, DataError, _runner
 from rnnkit._plan import plan
 from rnnkit._sweep import _check_metric, sweep
 from tolerances import OTHER_PROCESS, SAME_RUN
@@ -244,16 +244,48 @@ def test_a_killed_sweep_resumes_with_every_run_once(sunspots, tmp_path):
 # ---------------------------------------------------------------- processes
 
 
-def test_process_workers_equal_the_serial_run(sunspots):
+def test_process_workers_equal_the_serial_run(sunspots, monkeypatch):
+    made = []
+    real = _runner._shared_compile_cache
+
+    def spy():
+        env, path = real()
+        made.append(path)
+        return env, path
+    monkeypatch.setattr(_runner, "_shared_compile_cache", spy)
+    monkeypatch.delenv("JAX_COMPILATION_CACHE_DIR", raising=False)
     space = {"window": [4, 8], "activation": ["tanh", "relu"]}
     serial = sweep(sunspots, BASE, space, progress=False)
-    pooled = sweep(sunspots, BASE, space, workers=2, progress=False)
+    seen = []
+    pooled = sweep(sunspots, BASE, space, workers=2, progress=False,
+                   on_run=lambda rec: seen.extend(os.listdir(made[0])))
+    # The workers wrote their compiled programs to one shared directory, gone afterwards.
+    assert any(name.startswith("jit_epoch") for name in seen), seen
+    assert not os.path.exists(made[0])
     cols = [c for c in serial.table.columns if "_val_" in c or "_test_" in c
             or c.startswith(("val_", "test_"))]
     # Same programs, same seeds; the workers run XLA on one thread, so float32
     # rounding may differ (common practice, no source: thread count changes blocking).
     pd.testing.assert_frame_equal(serial.table[cols + ["key", "status", "epochs"]],
                                   pooled.table[cols + ["key", "status", "epochs"]], **OTHER_PROCESS)
+
+
+def test_interleave_takes_one_run_per_program_in_turn():
+    cfgs = [BASE.replace(hidden=h, activation=a) for h in (32, 16, 8)
+            for a in ("tanh", "relu", "sigmoid")]
+    tasks = [(i, {"steps": 8}) for i in range(len(cfgs))]
+    order = _runner.interleave(tasks, cfgs)
+    assert sorted(order) == sorted(tasks)  # every run once, nothing added
+    assert [cfgs[i].hidden for i, _ in order] == [32, 16, 8] * 3
+    assert [i for i, _ in order][:3] == [0, 3, 6]  # plan order kept within a program
+    # runs whose padded shapes differ compile different programs
+    split = _runner.interleave([(0, {"steps": 8}), (1, {"steps": 8}), (2, {"steps": 16})], cfgs)
+    assert [i for i, _ in split] == [0, 2, 1]
+
+
+def test_a_compilation_cache_of_the_callers_is_left_alone(monkeypatch, tmp_path):
+    monkeypatch.setenv("JAX_COMPILATION_CACHE_DIR", str(tmp_path))
+    assert _runner._shared_compile_cache() == ({}, None)
 
 
 def test_public_names():
