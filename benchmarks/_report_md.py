@@ -34,11 +34,24 @@ def _evidence(parts: dict) -> list:
                          f"(CPU seconds per wall second): serial {_cores(s):.2f}, two workers "
                          f"{_cores(p):.2f} of 2; their CPU seconds: {s['cpu_seconds']:.0f} serial, "
                          f"{p['cpu_seconds'] + p['worker_cpu_seconds']:.0f} with two workers "
-                         f"(ideal speed-up with 2 free cores about "
-                         f"{2 * s['cpu_seconds'] / (p['cpu_seconds'] + p['worker_cpu_seconds']):.2f}x).")
+                         f"(the best two fully used cores could give: serial wall time over half "
+                         f"the two-worker CPU seconds, "
+                         f"{2 * s['wall_seconds'] / (p['cpu_seconds'] + p['worker_cpu_seconds']):.2f}x).")
         if "sweep.training_programs" in missed:
             lines.append(f"- Training programs by hidden size: {s['compiles_by_hidden']}.")
     step = parts.get("step", {})
+    b = step.get("breakdown")
+    if b and any(n.startswith("step.") for n in missed):
+        row = next((r for r in step["rows"] if r["shape"] == b["shape"]), None)
+        lines.append(
+            f"- Training step at {'x'.join(map(str, b['shape']))}"
+            + (f" ({row['fast_ms']:.1f} ms)" if row else "") + f": forward {b['forward_ms']:.1f} ms, "
+            f"forward + BPTT {b['forward_backward_ms']:.1f} ms, of which the dV product alone "
+            f"{b['dV_product_ms']:.1f} ms. The recurrence is a chain of small products, one per time "
+            f"step: XLA runs the ({b['shape'][0]} x {b['shape'][3]}) x ({b['shape'][3]} x "
+            f"{b['shape'][3]}) one (with its tanh) at {b['xla_step_product_gflops']:.0f} GFLOP/s in its "
+            f"loop, numpy the product alone at {b['numpy_step_product_gflops']:.0f} GFLOP/s; the "
+            f"1024 x 1024 rate of the targets is {step['matmul_gflops']:.0f}.")
     odd = [r for r in step.get("rows", []) if r["matmul_fraction"] > 1.0]
     if odd:
         lines.append(f"- Step benchmark not trustworthy in this run: {len(odd)} shape(s) ran faster than "

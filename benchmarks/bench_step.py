@@ -148,6 +148,57 @@ def torch_step(B, T, I, H):
     return run
 
 
+def breakdown(B, T, I, H, min_s, min_reps, max_reps) -> dict:
+    """Where rnnkit's step goes at one shape, each part timed alone (ms per step) and the rate
+    of its per-step product (B, H) x (H, H) in XLA's loop against numpy's (GFLOP/s)."""
+    import jax
+    import jax.numpy as jnp
+    from jax import lax
+
+    import rnnkit
+    from rnnkit import _scan
+
+    xs_np, ys_np = _batches(B, T, I)
+    xs, ys = jnp.asarray(xs_np), jnp.asarray(ys_np)
+    params = rnnkit.init_params(jax.random.key(0), I, H, 1, scheme="orthogonal")
+    kw = dict(activation="tanh", task="regression", mode="many-to-one")
+
+    def looped(fn):
+        @jax.jit
+        def run(params, xs, ys):
+            def body(k, total):
+                out = fn(params, xs[k], ys[k])
+                return total + sum(jnp.sum(v) for v in jax.tree_util.tree_leaves(out))
+            return lax.fori_loop(0, STEPS, body, jnp.float32(0))
+        return lambda: run(params, xs, ys).block_until_ready()
+
+    def ms(fn):
+        return 1e3 * timed(fn, min_s, min_reps, max_reps) / STEPS
+
+    rng = np.random.default_rng(1)
+    hs = jnp.asarray(rng.standard_normal((T, B, H), dtype=np.float32))
+    da = jnp.asarray(rng.standard_normal((T, B, H), dtype=np.float32))
+    dv = jax.jit(_scan._tb_product)
+    h0 = jnp.asarray(rng.standard_normal((B, H), dtype=np.float32))
+    V = jnp.asarray(0.05 * rng.standard_normal((H, H), dtype=np.float32))
+    steps = jax.jit(lambda h, v: lax.fori_loop(0, T, lambda i, h: jnp.tanh(h @ v), h))
+    flops = 2 * B * H * H
+    a, b = np.asarray(h0), np.asarray(V)
+    out = {"shape": [B, T, I, H],
+           "forward_ms": ms(looped(lambda p, x, y: rnnkit.loss(p, x, y, **kw))),
+           "forward_backward_ms": ms(looped(jax.grad(lambda p, x, y: rnnkit.loss(p, x, y, **kw)))),
+           "dV_product_ms": 1e3 * timed(lambda: dv(hs, da).block_until_ready(), min_s, min_reps, max_reps),
+           "xla_step_product_gflops": T * flops / timed(lambda: steps(h0, V).block_until_ready(),
+                                                         min_s, min_reps, max_reps) / 1e9,
+           "numpy_step_product_gflops": flops / timed(lambda: a @ b, min_s, max(min_reps, 50), 2000) / 1e9}
+    print(f"where the step goes at {tuple(out['shape'])}: forward {out['forward_ms']:.1f} ms, forward + "
+          f"BPTT {out['forward_backward_ms']:.1f} ms (the dV product alone {out['dV_product_ms']:.1f} ms); "
+          f"the per-step ({B} x {H}) x ({H} x {H}) product in XLA's loop (with tanh) "
+          f"{out['xla_step_product_gflops']:.0f} GFLOP/s, numpy's {out['numpy_step_product_gflops']:.0f}",
+          flush=True)
+    return out
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     g = ap.add_mutually_exclusive_group()
@@ -199,6 +250,7 @@ def main(argv=None):
               "numpy-matmul ratios are not trustworthy in this run", flush=True)
     large = rows[-1]
     name = "x".join(map(str, large["shape"]))
+    parts = breakdown(*large["shape"], min_s, min_reps, max_reps)
     targets = [
         _util.target(f"step.fast_over_autodiff_{name}", large["autodiff_over_fast"], ">= 1.1x",
                      large["autodiff_over_fast"] >= 1.1, "x"),
@@ -214,7 +266,7 @@ def main(argv=None):
                                         ">= 50% of numpy's matmul rate",
                                         r["matmul_fraction"] >= 0.5, "%"))
     _util.emit({"benchmark": "step", "mode": "smoke" if args.smoke else "quick" if args.quick else "full",
-                "matmul_gflops": statistics.median(r["matmul_gflops"] for r in rows), "rows": rows, "load": _util.load_average(),
+                "matmul_gflops": statistics.median(r["matmul_gflops"] for r in rows), "rows": rows, "breakdown": parts, "load": _util.load_average(),
                 "targets": targets})
 
 
