@@ -1,4 +1,5 @@
 """Sweeps: plans, the table and summary, failures as rows, resume, stop, compile economy."""
+import json
 import os
 import signal
 import sqlite3
@@ -268,6 +269,28 @@ def test_process_workers_equal_the_serial_run(sunspots, monkeypatch):
     # rounding may differ (common practice, no source: thread count changes blocking).
     pd.testing.assert_frame_equal(serial.table[cols + ["key", "status", "epochs"]],
                                   pooled.table[cols + ["key", "status", "epochs"]], **OTHER_PROCESS)
+
+
+@pytest.mark.skipif(not hasattr(os, "sched_setaffinity") or len(os.sched_getaffinity(0)) < 2,
+                    reason="binding workers to cores needs Linux and two usable cores")
+def test_pool_workers_are_bound_to_one_core_each(tmp_path):
+    probe = tmp_path / "probe.py"
+    probe.write_text(textwrap.dedent("""
+        import json, os, time
+        from rnnkit import _runner
+
+        def where(_):
+            time.sleep(0.5)  # keeps a worker busy so that both take tasks
+            return os.getpid(), sorted(os.sched_getaffinity(0))
+
+        if __name__ == "__main__":
+            with _runner.process_pool(2) as pool:
+                print(json.dumps(dict(pool.map(where, range(4)))))
+    """))
+    out = subprocess.run([sys.executable, str(probe)], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    cores = list(json.loads(out.stdout.strip().splitlines()[-1]).values())
+    assert len(cores) == 2 and all(len(c) == 1 for c in cores) and cores[0] != cores[1], cores
 
 
 def test_interleave_takes_one_run_per_program_in_turn():
