@@ -9,8 +9,8 @@ slice of the demo data ``rnnkit.datasets.cold_storage_load``, every run with a
 fixed number of epochs (patience off, so each run does the same work whatever
 its scores). It runs twice, side by side, each time in a fresh process with a
 fresh run store: once with ``workers=1`` (in the sweep's own process, the
-default) and once with ``workers=2`` (two spawned worker processes with one
-XLA thread each). The serial sweep also measures the compile economy: the
+default) and once with ``workers=2`` (two spawned worker processes, each bound
+to one core, so one XLA thread each, sharing a compilation cache). The serial sweep also measures the compile economy: the
 training programs compiled (the table's "compiles" column, and
 ``rnnkit._epoch.compile_count()`` for all programs) and jax's compile time
 (trace + lowering + XLA compile, from jax.monitoring).

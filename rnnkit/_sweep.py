@@ -188,7 +188,9 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         metric: score to rank by; default "val_rmse" (regression) / "val_log_loss"
             (classification).
         workers: processes to run in (1: this process). Each worker is a spawned
-            process with one XLA and BLAS thread; results equal the serial run's.
+            process bound to one core (round robin), so XLA and BLAS run one
+            thread there; results equal the serial run's to float32 rounding.
+            Its processes share a temporary compilation cache.
         executor: a concurrent.futures.Executor to run on instead, e.g.
             ``dask.distributed.Client(...).get_executor()``; every run is
             submitted at once (workers > 1: at most that many in flight). A
