@@ -135,17 +135,15 @@ def _step_section(part: dict) -> list:
     out += [f"Forward + BPTT + Adam, float32, many-to-one tanh; rnnkit (fast BPTT), autodiff of the "
             f"scan and torch.nn.RNN + Linear + Adam timed side by side in one process, each over the "
             f"same 8 minibatches; the JAX steps inside one compiled loop as rnnkit's trainer runs "
-            f"them, torch in its Python loop. \"masked\": the same loop with the step mask the "
-            f"trainer passes (every step real); \"one call\": rnnkit's step jitted alone and "
-            f"called once per step. numpy float32 1024x1024 matmul in the same run: "
+            f"them, torch in its Python loop. \"one call\": rnnkit's step jitted alone and called "
+            f"once per step. numpy float32 1024x1024 matmul in the same run: "
             f"{part['matmul_gflops']:.1f} GFLOP/s.", ""]
     rows = [("x".join(map(str, r["shape"])), f"{r['fast_ms']:.2f}", f"{r['autodiff_ms']:.2f}",
-             f"{r['fast_masked_ms']:.2f}" if "fast_masked_ms" in r else "-",
              f"{r['fast_call_ms']:.2f}" if "fast_call_ms" in r else "-",
              f"{r['torch_ms']:.2f}", f"{r['torch_over_fast']:.2f}x", f"{r['gflops']:.1f}",
              f"{100 * r['matmul_fraction']:.1f}%") for r in part["rows"]]
-    out += _table(rows, ("B x T x I x H", "rnnkit ms", "autodiff ms", "masked ms", "one call ms",
-                         "torch ms", "torch / rnnkit", "GFLOP/s", "of matmul"))
+    out += _table(rows, ("B x T x I x H", "rnnkit ms", "autodiff ms", "one call ms", "torch ms",
+                         "torch / rnnkit", "GFLOP/s", "of matmul"))
     own = [f"{t['name']}: {t['shown']} (target {t['target']}) {t['status']}"
            for t in part.get("own_targets", [])]
     return out + ["", "bench_step.py's output (its own checks included):", "", "```",

@@ -1,4 +1,4 @@
-"""The recurrence itself: the forward loop and its fast backward pass (custom VJP).
+"""The recurrence itself: a forward lax.scan and its fast backward pass (custom VJP).
 
 Everything here is time-major and batched: xs (T, B, I), states (T, B, H),
 mask (T, B, 1) bool or None. The public, batch-major, checked functions live in
@@ -16,12 +16,6 @@ and after the loop takes
 as single large products contracting the (T, B) axes, which the CPU runs at
 matrix-multiply speed. The equations are those of Goodfellow, Bengio &
 Courville (2016), sec. 10.2.2, in the row-vector convention.
-
-The value of the states (and plain autodiff) comes from ``lax.scan``
-(``scan_states``). Under differentiation the custom VJP runs its forward and
-reverse loops as ``lax.fori_loop`` over one (T+1, B, H) buffer each, read and
-written in place by index, so the bulk products pair h_{t-1} with dA_t row for
-row without a shifted copy (``states_buffer``, ``_fast_bwd``).
 """
 from __future__ import annotations
 
@@ -100,83 +94,47 @@ def states_fast(act, xs, U, V, b, h0, mask):
     return states_autodiff(act, xs, U, V, b, h0, mask)
 
 
-def _at(a, t):
-    """a[t] for a traced index t: one (B, K) slab, read in place."""
-    return lax.dynamic_index_in_dim(a, t, 0, keepdims=False)
-
-
-def states_buffer(act, xs, U, V, b, h0, mask):
-    """The recurrence written into ONE (T+1, B, H) buffer: row 0 is h0, row t+1 is h_t.
-
-    Each step reads its previous state from the buffer and writes the new one
-    in place; nothing else is carried. Row t then holds h_{t-1}, the state that
-    step t multiplies by V, which is what the backward pass pairs with dA_t.
-    With a mask the state is also carried: then XLA computes the new state in
-    its own fusion, split over two threads, before copying it into the buffer
-    (reading it back from the buffer, XLA fused the select into the in-place
-    write on one thread: 60.5 against 54.9 ms per training step at
-    (B, T, I, H) = (128, 200, 8, 256)).
-    """
-    phi = get_activation(act).value
-    T = xs.shape[0]
-    # h0 above T zero rows, written once (zeros then an update would copy the buffer)
-    buf = jnp.concatenate([h0[None], jnp.zeros((T,) + h0.shape, h0.dtype)], axis=0)
-
-    if mask is None:
-        def step(t, buf):
-            h = _at(buf, t)  # (B, H) h_{t-1}
-            new = phi(_at(xs, t) @ U + h @ V + b[None, :])
-            return lax.dynamic_update_index_in_dim(buf, new, t + 1, 0)
-        return lax.fori_loop(0, T, step, buf)
-
-    def step_held(t, carry):
-        h, buf = carry
-        new = jnp.where(_at(mask, t), phi(_at(xs, t) @ U + h @ V + b[None, :]), h)
-        return new, lax.dynamic_update_index_in_dim(buf, new, t + 1, 0)
-    return lax.fori_loop(0, T, step_held, (h0, buf))[1]
-
-
 def _fast_fwd(act, xs, U, V, b, h0, mask):
-    buf = states_buffer(act, xs, U, V, b, h0, mask)  # (T+1, B, H)
-    return buf[1:], (xs, U, V, buf, mask)
+    hs = states_autodiff(act, xs, U, V, b, h0, mask)  # (T, B, H)
+    return hs, (xs, U, V, h0, hs, mask)
 
 
 def _fast_bwd(act, res, g):
     """Reverse pass. g = dL/dh_t from the outputs, (T, B, H)."""
-    xs, U, V, buf, mask = res
-    T = xs.shape[0]
-    # 1. The reverse loop, over the same kind of buffer: dA_t goes to row t of `da`
-    #    (row T stays zero), and only dL/dh_t through the recurrence is carried.
-    #    phi'(a_t) is taken from h_t inside the body, where XLA fuses it with the multiply.
-    #    Measured at (B, T, I, H) = (128, 200, 8, 256) inside a training loop: 56.6 ms per
-    #    step against 60.9 ms for lax.scan loops, which copied the carried slabs every step
-    #    (and, before that, 15 ms more for a shifted copy of the states before dV).
+    xs, U, V, h0, hs, mask = res
+    # 1. The reverse loop. phi'(a_t) is taken from h_t inside the body, where XLA fuses it
+    #    with the multiply: measured faster than a separate (T, B, H) pass before the loop.
+    #    The loop emits dA one step late: row t of `da_next` is dA_{t+1} (zero at t = T-1)
+    #    and dA_0 comes out in the final carry. Then h_t^T dA_{t+1} pairs the stored states
+    #    row for row with `da_next`, and dV needs no shifted copy of the states: building
+    #    [h0, h_0 .. h_{T-2}] (a concatenate before the product) cost about 15 ms of a
+    #    40 ms backward pass at (B, T, H) = (128, 200, 256).
     dphi = get_activation(act).grad_from_output
     Vt = V.T
-
-    def step(i, carry):
-        dh, da_buf = carry
-        t = T - 1 - i
-        gh = _at(g, t) + dh  # (B, H) dL/dh_t
-        h_t = _at(buf, t + 1)
-        if mask is None:
-            da = gh * dphi(h_t)  # (B, H) dL/da_t
-            back = da @ Vt  # dA_t V^T = dL/dh_{t-1} through the recurrence
-        else:
-            m = _at(mask, t)
+    zeros = jnp.zeros_like(h0)
+    if mask is None:
+        def step(carry, inp):
+            dh, da_later = carry  # dL/dh_t through the recurrence; dA_{t+1}
+            g_t, h_t = inp
+            da = (g_t + dh) * dphi(h_t)  # (B, H) dL/da_t
+            return (da @ Vt, da), da_later  # dA_t V^T = dL/dh_{t-1} through the recurrence
+        (dh0, da0), da_next = lax.scan(step, (zeros, zeros), (g, hs), reverse=True)
+    else:
+        def step(carry, inp):
+            dh, da_later = carry
+            g_t, h_t, m_t = inp
+            gh = g_t + dh  # (B, H) dL/dh_t
             zero = jnp.zeros_like(gh)
-            da = jnp.where(m, gh * dphi(h_t), zero)  # a padded step has no pre-activation
+            da = jnp.where(m_t, gh * dphi(h_t), zero)  # a padded step has no pre-activation
             # ... and passes dL/dh_t unchanged to h_{t-1}, since h_t = h_{t-1} there
-            back = da @ Vt + jnp.where(m, zero, gh)
-        return back, lax.dynamic_update_index_in_dim(da_buf, da, t, 0)
-    dh0, da = lax.fori_loop(0, T, step, (jnp.zeros_like(buf[0]), jnp.zeros_like(buf)))
-    # 2. The parameter gradients as single products over all (T+1)*B rows: row t of `buf`
-    #    is h_{t-1} and row t of `da` is dA_t, so the pairs line up (the last row adds 0).
-    dV = _tb_product(buf, da)  # (H, H) sum_t h_{t-1}^T dA_t
-    xs_ext = jnp.concatenate([xs, jnp.zeros_like(xs[:1])], axis=0)  # (T+1, B, I); small, I << H
-    dU = _tb_product(xs_ext, da)  # (I, H)
-    db = jnp.sum(da, axis=(0, 1))  # (H,)
-    dxs = times(da, U.T)[:T]  # (T, B, I); dropped by XLA when unused
+            return (da @ Vt + jnp.where(m_t, zero, gh), da), da_later
+        (dh0, da0), da_next = lax.scan(step, (zeros, zeros), (g, hs, mask), reverse=True)
+    # 2. The parameter gradients as single products over all T*B rows, plus the t = 0 term.
+    dV = _tb_product(hs, da_next) + h0.T @ da0  # (H, H): sum_t h_{t-1}^T dA_t
+    xs_next = jnp.concatenate([xs[1:], jnp.zeros_like(xs[:1])], axis=0)  # x_{t+1}; small, I << H
+    dU = _tb_product(xs_next, da_next) + xs[0].T @ da0  # (I, H)
+    db = jnp.sum(da_next, axis=(0, 1)) + jnp.sum(da0, axis=0)  # (H,)
+    dxs = jnp.concatenate([(da0 @ U.T)[None], times(da_next[:-1], U.T)], axis=0)  # (T, B, I); dropped by XLA when unused
     return dxs, dU, dV, db, dh0, None
 
 
