@@ -134,16 +134,19 @@ def _step_section(part: dict) -> list:
         return out
     out += [f"Forward + BPTT + Adam, float32, many-to-one tanh; rnnkit (fast BPTT), autodiff of the "
             f"scan and torch.nn.RNN + Linear + Adam timed side by side in one process, each over the "
-            f"same 8 minibatches; the JAX steps inside one compiled loop as rnnkit's trainer runs "
-            f"them, torch in its Python loop. \"one call\": rnnkit's step jitted alone and called "
-            f"once per step. numpy float32 1024x1024 matmul in the same run: "
+            f"same 8 minibatches; the JAX steps inside one compiled loop with the step mask (every "
+            f"step real), as rnnkit's trainer runs them, torch in its Python loop. \"no mask\": "
+            f"the same loop without the mask, as a direct call of rnnkit.loss runs; \"one call\": "
+            f"rnnkit's step jitted alone, no mask, called once per step. numpy float32 1024x1024 "
+            f"matmul in the same run: "
             f"{part['matmul_gflops']:.1f} GFLOP/s.", ""]
     rows = [("x".join(map(str, r["shape"])), f"{r['fast_ms']:.2f}", f"{r['autodiff_ms']:.2f}",
+             f"{r['fast_nomask_ms']:.2f}" if "fast_nomask_ms" in r else "-",
              f"{r['fast_call_ms']:.2f}" if "fast_call_ms" in r else "-",
              f"{r['torch_ms']:.2f}", f"{r['torch_over_fast']:.2f}x", f"{r['gflops']:.1f}",
              f"{100 * r['matmul_fraction']:.1f}%") for r in part["rows"]]
-    out += _table(rows, ("B x T x I x H", "rnnkit ms", "autodiff ms", "one call ms", "torch ms",
-                         "torch / rnnkit", "GFLOP/s", "of matmul"))
+    out += _table(rows, ("B x T x I x H", "rnnkit ms", "autodiff ms", "no mask ms", "one call ms",
+                         "torch ms", "torch / rnnkit", "GFLOP/s", "of matmul"))
     own = [f"{t['name']}: {t['shown']} (target {t['target']}) {t['status']}"
            for t in part.get("own_targets", [])]
     return out + ["", "bench_step.py's output (its own checks included):", "", "```",
