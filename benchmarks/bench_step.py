@@ -12,7 +12,8 @@ A training step is forward + BPTT + Adam on a many-to-one regression loss
     torch    torch.nn.RNN + torch.nn.Linear + MSELoss + torch.optim.Adam
 
 Each side runs STEPS steps over STEPS different minibatches, timed together and
-divided by STEPS. The JAX steps run as rnnkit's trainer runs them: inside one
+divided by STEPS; the sides take turns, one run each per round, and each
+reports its median over the rounds. The JAX steps run as rnnkit's trainer runs them: inside one
 compiled loop (``lax.fori_loop``; rnnkit's epoch program is a while loop over
 minibatches) and with the step mask the trainer always passes (every step real
 here, given as data, so that the work equals torch's). torch runs its usual
@@ -63,6 +64,23 @@ def timed(fn, min_seconds, min_reps, max_reps):
         fn()
         times.append(time.perf_counter() - t)
     return statistics.median(times)
+
+
+def timed_together(fns, min_seconds, min_reps, max_reps):
+    """Median seconds of each fn(), timed in rounds (one call of each per round, in turn), so
+    that every side sees the same load on a shared machine; each is warmed up twice first."""
+    for fn in fns:
+        fn()
+        fn()
+    times = [[] for _ in fns]
+    start = time.perf_counter()
+    while len(times[0]) < max_reps and (len(times[0]) < min_reps
+                                        or time.perf_counter() - start < min_seconds):
+        for fn, ts in zip(fns, times):
+            t = time.perf_counter()
+            fn()
+            ts.append(time.perf_counter() - t)
+    return [statistics.median(ts) for ts in times]
 
 
 def numpy_matmul_gflops(reps):
@@ -238,12 +256,10 @@ def main(argv=None):
     for B, T, I, H in shapes:
         fast, plain, fast_plain, fast_call, rel = jax_steps(B, T, I, H)
         matmul_before = numpy_matmul_gflops(matmul_reps)
-        t_fast = timed(fast, min_s, min_reps, max_reps) / STEPS
-        t_plain = timed(plain, min_s, min_reps, max_reps) / STEPS
-        t_nomask = timed(fast_plain, min_s, min_reps, max_reps) / STEPS
-        t_call = timed(fast_call, min_s, min_reps, max_reps) / STEPS
-        t_torch = (timed(torch_step(B, T, I, H), min_s, min_reps, max_reps) / STEPS if torch
-                   else float("nan"))
+        sides = [fast, plain, fast_plain, fast_call] + ([torch_step(B, T, I, H)] if torch else [])
+        got = [t / STEPS for t in timed_together(sides, 5 * min_s, min_reps, max_reps)]
+        t_fast, t_plain, t_nomask, t_call = got[:4]
+        t_torch = got[4] if torch else float("nan")
         # numpy's rate just before and just after this shape's timings, averaged
         matmul = (matmul_before + numpy_matmul_gflops(matmul_reps)) / 2
         gflops = step_flops(B, T, I, H) / t_fast / 1e9
