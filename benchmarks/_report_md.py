@@ -40,8 +40,10 @@ def _evidence(parts: dict) -> list:
         if "sweep.training_programs" in missed:
             lines.append(f"- Training programs by hidden size: {s['compiles_by_hidden']}.")
     step = parts.get("step", {})
-    b = step.get("breakdown")
-    if b and any(n.startswith("step.") for n in missed):
+    for b in step.get("breakdowns", []):
+        name = "x".join(map(str, b["shape"]))
+        if not any(n.startswith("step.") and n.endswith("_" + name) for n in missed):
+            continue
         row = next((r for r in step["rows"] if r["shape"] == b["shape"]), None)
         lines.append(
             f"- Training step at {'x'.join(map(str, b['shape']))}"

@@ -283,7 +283,8 @@ def main(argv=None):
               "numpy-matmul ratios are not trustworthy in this run", flush=True)
     large = rows[-1]
     name = "x".join(map(str, large["shape"]))
-    parts = breakdown(*large["shape"], min_s, min_reps, max_reps)
+    parts = [breakdown(*r["shape"], min_s, min_reps, max_reps) for r in rows
+             if r["shape"][3] >= 128] or [breakdown(*large["shape"], min_s, min_reps, max_reps)]
     targets = [
         _util.target(f"step.fast_over_autodiff_{name}", large["autodiff_over_fast"], ">= 1.1x",
                      large["autodiff_over_fast"] >= 1.1, "x"),
@@ -299,7 +300,7 @@ def main(argv=None):
                                         ">= 50% of numpy's matmul rate",
                                         r["matmul_fraction"] >= 0.5, "%"))
     _util.emit({"benchmark": "step", "mode": "smoke" if args.smoke else "quick" if args.quick else "full",
-                "matmul_gflops": statistics.median(r["matmul_gflops"] for r in rows), "rows": rows, "breakdown": parts, "load": _util.load_average(),
+                "matmul_gflops": statistics.median(r["matmul_gflops"] for r in rows), "rows": rows, "breakdowns": parts, "load": _util.load_average(),
                 "targets": targets})
 
 
