@@ -182,7 +182,8 @@ class FitResult:
           "sequence" when its own name is "actual", "predicted", "split"...).
           Regression: "actual"/"predicted" (one target) or "<target>_actual"/
           "<target>_predicted", in original units. Classification: "actual",
-          "predicted" (labels) and "p_<class>" probabilities. Rows no window
+          "predicted" (labels) and "p_<class>" probabilities (labels that print
+          alike, such as 1 and "1", use their repr: p_1, p_'1'). Rows no window
           predicts hold NaN/None. Many-to-many: each target time shows the window
           that ends there (see ``_predict``). window="full": one row per sequence,
           indexed by its id.

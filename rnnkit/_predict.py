@@ -269,9 +269,21 @@ def _class_columns(actual, proba, classes):
     predicted = np.full(len(proba), None, dtype=object)
     predicted[has] = classes[np.argmax(np.where(has[:, None], proba, 0.0), axis=1)[has]]
     cols = {"actual": actual, "predicted": predicted}
-    for k, c in enumerate(classes.tolist()):
-        cols[f"p_{c}"] = proba[:, k]
+    for k, name in enumerate(prob_columns(classes.tolist())):
+        cols[name] = proba[:, k]
     return cols
+
+
+def prob_columns(classes: list) -> list:
+    """"p_<class>" for each class; labels that print alike (1 and "1") get their repr
+    instead (p_1 and p_'1'), so that no two classes share a column."""
+    names = [f"p_{c}" for c in classes]
+    if len(set(names)) == len(names):
+        return names
+    names = [f"p_{c!r}" if names.count(n) > 1 else n for c, n in zip(classes, names)]
+    if len(set(names)) < len(names):  # still alike: number them
+        names = [f"{n}#{k}" for k, n in enumerate(names)]
+    return names
 
 
 def _sequence_frame(prepared, spec, actual, parts):

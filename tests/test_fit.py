@@ -6,7 +6,7 @@ import pandas as pd
 import pytest
 
 import rnnkit
-from rnnkit import Config, DataError, fit, load_fit, prepare
+from rnnkit import Config, DataError, _predict, fit, load_fit, prepare
 from rnnkit._baselines import prepared_mase_scale
 from rnnkit._metrics import classification_metrics, regression_metrics
 from rnnkit._model import loss as model_loss
@@ -262,3 +262,17 @@ def test_prediction_frame_whole_sequence_regression():
     last = df.groupby("g")["a"].last()
     np.testing.assert_array_equal(pred["actual"], last[pred.index])
     np.testing.assert_array_equal(pred["predicted"], 2 * last[pred.index])
+
+
+def test_class_labels_that_print_alike_get_their_own_probability_columns():
+    # An object column holding both the number 1 and the text "1": two classes.
+    rng = np.random.default_rng(0)
+    labels = np.array([1, "1"], dtype=object)[rng.integers(0, 2, 300)]
+    df = pd.DataFrame({"x": rng.standard_normal(300), "label": labels})
+    cfg = Config(target="label", task="classification", window=4, hidden=4, epochs=1, season=None)
+    pred = rnnkit.fit(df, cfg, progress=False).predict()
+    prob = [c for c in pred.columns if str(c).startswith("p_")]
+    assert sorted(prob) == ["p_'1'", "p_1"]
+    rows = pred[prob].dropna()
+    assert len(rows) and np.allclose(rows.sum(axis=1), 1.0)
+    assert _predict.prob_columns(["a", "b"]) == ["p_a", "p_b"]  # the usual names otherwise
