@@ -199,7 +199,11 @@ def run_suite(mode: str) -> dict:
 
 
 def write_atomically(path: Path, text: str) -> None:
-    """Write a temp file in the same folder, then rename it over ``path``."""
+    """Write a temp file in the same folder, then rename it over ``path``.
+
+    Not rnnkit._atomic.write_text: importing rnnkit would load jax into this parent
+    process, which only starts and reads the measured children.
+    """
     fd, tmp = tempfile.mkstemp(dir=str(path.parent), prefix=f".{path.name}.", suffix=".tmp")
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:

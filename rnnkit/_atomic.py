@@ -12,11 +12,16 @@ from pathlib import Path
 
 def write_text(path, text: str) -> Path:
     """Write ``text`` (UTF-8) to ``path`` atomically, with the usual permissions (umask)."""
+    return write_bytes(path, text.encode("utf-8"))
+
+
+def write_bytes(path, data: bytes) -> Path:
+    """Write ``data`` to ``path`` atomically, with the usual permissions (umask)."""
     path = Path(path)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
             f.flush()
             os.fsync(f.fileno())
         umask = os.umask(0)

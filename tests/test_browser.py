@@ -14,7 +14,6 @@ import signal
 import socket
 import subprocess
 import sys
-import tempfile
 import time
 import urllib.request
 from pathlib import Path
@@ -22,6 +21,7 @@ from pathlib import Path
 import pytest
 
 import rnnkit
+from rnnkit._atomic import write_bytes
 
 CHROMIUM = "/usr/bin/chromium"
 REPO = Path(__file__).resolve().parents[1]
@@ -88,19 +88,6 @@ def lab(tmp_path):
         log.close()
 
 
-def _save_png_atomically(data: bytes, path: Path) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".panel-", suffix=".png")
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 @pytest.mark.timeout(600)
 def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
     export_path = lab["dir"] / "from_browser.json"
@@ -146,7 +133,8 @@ def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
             page.locator(".rnnkit-pages .lm-TabBar-tab", has_text="Forecast").click()
             page.locator("img.rnnkit-fig-forecast").wait_for(state="visible", timeout=30_000)
             page.wait_for_timeout(500)  # let the tab switch paint
-            _save_png_atomically(panel.screenshot(), SCREENSHOT)
+            SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
+            write_bytes(SCREENSHOT, panel.screenshot())
 
             page.locator(".rnnkit-path input").fill(str(export_path))
             page.locator(".rnnkit-path input").press("Tab")
