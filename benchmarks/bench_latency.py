@@ -14,7 +14,7 @@ does, compiles included. Warm: the same fit again in that process (median of
 ``--repeats``). Targets: warm under 2 s, cold under 5 s.
 
 Breakdown: fit() is a composition of a few module-level functions of
-``rnnkit._fit`` (prepare, train, network_predictions, fit_baselines,
+``rnnkit.fitting._fit`` (prepare, train, network_predictions, fit_baselines,
 baseline_predictions, score, frame_actuals). This script wraps each with a
 timer for the duration of the measurement, and a jax.monitoring listener
 attributes compile time (trace + lowering + XLA compile) to the phase it
@@ -35,13 +35,13 @@ import _util  # noqa: E402
 HERE = Path(__file__).resolve()
 WARM_LIMIT = 2.0
 COLD_LIMIT = 5.0
-# Names fit() looks up in rnnkit._fit at call time; each becomes a timed phase.
+# Names fit() looks up in rnnkit.fitting._fit at call time; each becomes a timed phase.
 PHASES = ("prepare", "train", "frame_actuals", "network_predictions", "fit_baselines",
           "baseline_predictions", "score")
 
 
 class PhaseClock:
-    """Wall and compile seconds per phase of fit(), by wrapping rnnkit._fit's functions."""
+    """Wall and compile seconds per phase of fit(), by wrapping rnnkit.fitting._fit's functions."""
 
     def __init__(self, module, clock: _util.CompileClock):
         self.module, self.clock = module, clock
@@ -114,7 +114,7 @@ def child(smoke: bool, repeats: int) -> dict:
     """Cold fit, then warm fits, in this (fresh) process."""
     t_import = time.perf_counter()
     import rnnkit
-    from rnnkit import _fit
+    from rnnkit.fitting import _fit
     import_seconds = time.perf_counter() - t_import
 
     t_data = time.perf_counter()

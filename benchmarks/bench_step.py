@@ -8,7 +8,7 @@ A training step is forward + BPTT + Adam on a many-to-one regression loss
 (tanh state, O = 1), float32, over one minibatch (B, T, I):
 
     fast     jax.value_and_grad(rnnkit.loss)          (custom-VJP BPTT)
-    autodiff jax.value_and_grad(rnnkit._model._loss_autodiff)   (autodiff of lax.scan)
+    autodiff jax.value_and_grad(rnnkit.recurrent._model._loss_autodiff)   (autodiff of lax.scan)
     torch    torch.nn.RNN + torch.nn.Linear + MSELoss + torch.optim.Adam
 
 Each side runs STEPS steps over STEPS different minibatches, timed together and
@@ -107,7 +107,7 @@ def jax_steps(B, T, I, H):
     from jax import lax
 
     import rnnkit
-    from rnnkit import _model
+    from rnnkit.recurrent import _model
 
     xs_np, ys_np = _batches(B, T, I)
     xs, ys = jax.numpy.asarray(xs_np), jax.numpy.asarray(ys_np)
@@ -186,7 +186,7 @@ def breakdown(B, T, I, H, min_s, min_reps, max_reps) -> dict:
     from jax import lax
 
     import rnnkit
-    from rnnkit import _scan
+    from rnnkit.recurrent import _scan
 
     xs_np, ys_np = _batches(B, T, I)
     xs, ys = jnp.asarray(xs_np), jnp.asarray(ys_np)

@@ -12,7 +12,7 @@ fresh run store: once with ``workers=1`` (in the sweep's own process, the
 default) and once with ``workers=2`` (two spawned worker processes, each bound
 to one core, so one XLA thread each, sharing a compilation cache). The serial sweep also measures the compile economy: the
 training programs compiled (the table's "compiles" column, and
-``rnnkit._epoch.compile_count()`` for all programs) and jax's compile time
+``rnnkit.training._epoch.compile_count()`` for all programs) and jax's compile time
 (trace + lowering + XLA compile, from jax.monitoring).
 
 Targets: at most 3 training programs; compile time under 20% of the sweep's
@@ -57,11 +57,11 @@ def child(workers: int, size: str, store: str) -> dict:
     """Run the sweep once in this process (imports excluded from the clock); its measurements."""
     t_import = time.perf_counter()
     import rnnkit
-    from rnnkit import _epoch
+    from rnnkit.training import _epoch
 
     sweep = getattr(rnnkit, "sweep", None)
     if sweep is None:  # not yet re-exported
-        from rnnkit._sweep import sweep
+        from rnnkit.sweeps._sweep import sweep
     import_seconds = time.perf_counter() - t_import
 
     years, epochs, space = SIZES[size]

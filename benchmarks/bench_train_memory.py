@@ -65,8 +65,9 @@ def child(rows: int, window: int, steps: int) -> dict:
     import numpy as np
     import pandas as pd
 
-    from rnnkit import Config, _epoch, prepare
-    from rnnkit._train import train
+    from rnnkit import Config, prepare
+    from rnnkit.training import _epoch
+    from rnnkit.training._train import train
 
     rss_imports = _rss_mb()
     rng = np.random.default_rng(0)

@@ -201,7 +201,7 @@ def run_suite(mode: str) -> dict:
 def write_atomically(path: Path, text: str) -> None:
     """Write a temp file in the same folder, then rename it over ``path``.
 
-    Not rnnkit._atomic.write_text: importing rnnkit would load jax into this parent
+    Not rnnkit.data._atomic.write_text: importing rnnkit would load jax into this parent
     process, which only starts and reads the measured children.
     """
     fd, tmp = tempfile.mkstemp(dir=str(path.parent), prefix=f".{path.name}.", suffix=".tmp")

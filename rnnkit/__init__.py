@@ -1,40 +1,52 @@
-"""rnnkit: train, diagnose and tune simple recurrent networks on your own time series."""
-from ._config import Config as Config
-from ._errors import DataError as DataError
-from ._cells import init_params as init_params
-from ._model import hidden_states as hidden_states
-from ._model import outputs as outputs
-from ._model import loss as loss
-from ._model import predict_classes as predict_classes
-from ._gradcheck import check_gradients as check_gradients
-from . import reference as reference
-from . import datasets as datasets
+"""rnnkit: train, diagnose and tune simple recurrent networks on your own time series.
 
-__version__ = "0.1.0"
-from ._data import prepare as prepare
-from ._windows import Prepared as Prepared
-from ._export import load_config as load_config
-from ._export import save_config as save_config
-from ._export import check_fingerprint as check_fingerprint
-from ._export import FingerprintWarning as FingerprintWarning
-from ._fit import fit as fit
-from ._fit import FitResult as FitResult
-from ._fit_io import load_fit as load_fit
-from ._diagnose import Diagnostics as Diagnostics
-from ._diagnose import loss_surface as loss_surface
-from ._diagnose import loss_slice as loss_slice
-from ._sweep import sweep as sweep
-from ._sweep import SweepResult as SweepResult
-from ._plan import plan as plan
-from ._runner import run as run
-from ._store import RunStore as RunStore
-from ._train import compile_count as compile_count
+The parts, from the faces down (a part imports only parts below it):
+
+    notebook, cli   the panel; the command line, its HTML report, the demo
+    sweeps          plan, run, store; the JSON document
+    fitting         fit(), FitResult, save and load
+    evaluation      metrics and baselines
+    inspection      gradient through time, spectra, saturation, loss surfaces
+    training        optax loop, compiled epoch programs
+    data            Config, checks, splits, windows, scaling; demo data
+    recurrent       cells, scans, fast BPTT, the NumPy reference
+    plots           figure builders (data in, Figure out)
+"""
+from ._version import __version__ as __version__
+from .inspection import check_gradients as check_gradients
+from .recurrent import hidden_states as hidden_states
+from .recurrent import init_params as init_params
+from .recurrent import loss as loss
+from .recurrent import outputs as outputs
+from .recurrent import predict_classes as predict_classes
+from .recurrent import reference as reference
+from .data import Config as Config
+from .data import DataError as DataError
+from .data import Prepared as Prepared
+from .data import datasets as datasets
+from .data import prepare as prepare
+from .training import compile_count as compile_count
+from .inspection import Diagnostics as Diagnostics
+from .inspection import loss_slice as loss_slice
+from .inspection import loss_surface as loss_surface
+from .fitting import FitResult as FitResult
+from .fitting import fit as fit
+from .fitting import load_fit as load_fit
+from .sweeps import FingerprintWarning as FingerprintWarning
+from .sweeps import RunStore as RunStore
+from .sweeps import SweepResult as SweepResult
+from .sweeps import check_fingerprint as check_fingerprint
+from .sweeps import load_config as load_config
+from .sweeps import plan as plan
+from .sweeps import run as run
+from .sweeps import save_config as save_config
+from .sweeps import sweep as sweep
 
 
 # matplotlib and ipywidgets load on first use of `rnnkit.plots` or `rnnkit.panel`, not
 # on `import rnnkit`: about 0.5 s that a script, the command line or a sweep's worker
 # process never needs.
-_LAZY = {"plots": ("rnnkit.plots", None), "panel": ("rnnkit._panel", "panel")}
+_LAZY = {"plots": ("rnnkit.plots", None), "panel": ("rnnkit.notebook", "panel")}
 
 
 def __getattr__(name):

@@ -5,9 +5,9 @@ import pytest
 from numpy.lib.stride_tricks import sliding_window_view
 
 from rnnkit import Config, prepare
-from rnnkit import _baseline_core as core
-from rnnkit import _baselines as B
-from rnnkit._metrics import mase_scale
+from rnnkit.evaluation import _baseline_core as core
+from rnnkit.evaluation import _baselines as B
+from rnnkit.evaluation._metrics import mase_scale
 from tolerances import EXACT64, HAND, OLS
 
 # Two sequences: a = rows 0..9 (values 1..10), b = rows 10..14 (values 50..90).

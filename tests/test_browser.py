@@ -21,7 +21,7 @@ from pathlib import Path
 import pytest
 
 import rnnkit
-from rnnkit._atomic import write_bytes
+from rnnkit.data._atomic import write_bytes
 
 CHROMIUM = "/usr/bin/chromium"
 REPO = Path(__file__).resolve().parents[1]

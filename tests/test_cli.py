@@ -6,7 +6,7 @@ import sys
 import pytest
 
 import rnnkit
-from rnnkit.__main__ import main, read_data
+from rnnkit.cli import main, read_data
 
 
 def _run(*args, cwd=None):

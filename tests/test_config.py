@@ -5,7 +5,7 @@ import math
 import pytest
 
 from rnnkit import Config
-from rnnkit._config import config_fields
+from rnnkit.data._config import config_fields
 
 # (field, bad value, extra fields that make the case reach that check)
 BAD = [

@@ -4,7 +4,7 @@ import pytest
 import statsmodels.api as sm
 
 from rnnkit import Config, sweep
-from rnnkit._runner import worker_env
+from rnnkit.sweeps._runner import worker_env
 from tolerances import OTHER_PROCESS
 
 distributed = pytest.importorskip(

@@ -6,8 +6,8 @@ import pytest
 
 import rnnkit
 from rnnkit import Config, fit, prepare
-from rnnkit._diagnose import diagnose, gradient_through_time, perturbed_states, spectrum
-from rnnkit._surface import filter_normalised, random_direction
+from rnnkit.inspection._diagnose import diagnose, gradient_through_time, perturbed_states, spectrum
+from rnnkit.inspection._surface import filter_normalised, random_direction
 from test_fit import SINE, noisy_sine
 from tolerances import EXACT32, EXACT64, TORCH64
 

@@ -15,10 +15,10 @@ from hypothesis import strategies as st
 from jsonschema import Draft202012Validator
 
 import rnnkit
-from rnnkit import _config
-from rnnkit._config import Config, config_fields
+from rnnkit.data import _config
+from rnnkit.data._config import Config, config_fields
 from tolerances import REPRODUCE
-from rnnkit._export import (FingerprintWarning, check_fingerprint, document, fingerprint, load_config,
+from rnnkit.sweeps._export import (FingerprintWarning, check_fingerprint, document, fingerprint, load_config,
                             read_document, save_config, schema, validate, write_document)
 
 CONFIG_SCHEMA = schema()["$defs"]["config"]

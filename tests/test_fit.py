@@ -6,10 +6,11 @@ import pandas as pd
 import pytest
 
 import rnnkit
-from rnnkit import Config, DataError, _predict, fit, load_fit, prepare
-from rnnkit._baselines import prepared_mase_scale
-from rnnkit._metrics import classification_metrics, regression_metrics
-from rnnkit._model import loss as model_loss
+from rnnkit import Config, DataError, fit, load_fit, prepare
+from rnnkit.data import _predict
+from rnnkit.evaluation._baselines import prepared_mase_scale
+from rnnkit.evaluation._metrics import classification_metrics, regression_metrics
+from rnnkit.recurrent._model import loss as model_loss
 from tolerances import EXACT32, METRIC
 
 # Every sine fit shares these sizes (and adam with clipping), so one compiled epoch program
@@ -230,7 +231,7 @@ def _groups_frame():
 
 def test_prediction_frame_several_targets_and_groups():
     # The frame layout alone (no training): predictions set to actual + 1 on every target row.
-    from rnnkit._predict import frame_actuals, prediction_frame, spec_of
+    from rnnkit.data._predict import frame_actuals, prediction_frame, spec_of
 
     df = _groups_frame()
     p = prepare(df, Config(target=("a", "b"), group_column="g", window=3, season=None,
@@ -249,7 +250,7 @@ def test_prediction_frame_several_targets_and_groups():
 
 
 def test_prediction_frame_whole_sequence_regression():
-    from rnnkit._predict import frame_actuals, prediction_frame, spec_of
+    from rnnkit.data._predict import frame_actuals, prediction_frame, spec_of
 
     df = _groups_frame()
     p = prepare(df, Config(target="a", group_column="g", window="full", season=None,

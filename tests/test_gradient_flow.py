@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 import rnnkit
-from rnnkit._config import ACTIVATIONS
+from rnnkit.data._config import ACTIVATIONS
 
 T, I, H = 16, 2, 8
 

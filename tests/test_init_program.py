@@ -5,10 +5,10 @@ import pandas as pd
 import pytest
 
 from rnnkit import Config, prepare
-from rnnkit._cells import init_params
-from rnnkit._epoch import _COMPILER_OPTIONS
-from rnnkit._optim import init_state
-from rnnkit._train import _check_shapes, _setup, initial_state, precision
+from rnnkit.recurrent._cells import init_params
+from rnnkit.training._epoch import _COMPILER_OPTIONS
+from rnnkit.training._optim import init_state
+from rnnkit.training._train import _check_shapes, _setup, initial_state, precision
 from tolerances import EXACT32, EXACT64
 
 

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from sklearn import metrics as skm
 
-from rnnkit import _metrics as M
+from rnnkit.evaluation import _metrics as M
 from tolerances import HAND, METRIC, METRIC32
 
 

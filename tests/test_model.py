@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 
 import rnnkit
-from rnnkit import _model
-from rnnkit._config import ACTIVATIONS, MODES, TASKS
+from rnnkit.recurrent import _model
+from rnnkit.data._config import ACTIVATIONS, MODES, TASKS
 from tolerances import EXACT32, EXACT64, FAST_VS_AUTODIFF
 
 

@@ -4,7 +4,7 @@ import pandas as pd
 import pytest
 
 from rnnkit import Config, fit
-from rnnkit._metrics import classification_metrics
+from rnnkit.evaluation._metrics import classification_metrics
 
 
 def test_sunspots_end_to_end():

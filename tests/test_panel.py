@@ -16,8 +16,8 @@ import pytest
 
 import rnnkit
 from rnnkit import plots
-from rnnkit._panel import Panel
-from rnnkit._panel_views import render, sized
+from rnnkit.notebook._panel import Panel
+from rnnkit.notebook._views import render, sized
 
 WAIT = 600  # seconds; a generous bound for a few jit compiles on a busy 2-core machine
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
@@ -102,7 +102,7 @@ def test_figures_show_the_results_series(trained):
     assert im["path"].value == render(sized("path", plots.hidden_path, d.val_states,
                                             times=d.val_times))
     # The forecast page shows the test range only, on the frame's own time index.
-    from rnnkit._panel_data import forecast_frame
+    from rnnkit.notebook._data import forecast_frame
     shown = forecast_frame(r)
     assert set(shown["split"]) == {"test"}
     assert shown.index.isin(trained._df.index).all()
@@ -114,7 +114,7 @@ def test_figures_show_the_results_series(trained):
 def test_forecast_baseline_is_the_best_scored_one(trained):
     from sklearn.metrics import mean_squared_error
 
-    from rnnkit._panel_data import baseline_series, best_baseline, forecast_frame
+    from rnnkit.notebook._data import baseline_series, best_baseline, forecast_frame
     r = trained.result
     name = best_baseline(r)
     others = r.metrics.drop(index="rnn")["test_rmse"]
@@ -139,7 +139,7 @@ def test_window_slider_picks_the_heatmap_window(trained):
     slider.value = 3
     third = trained.views.images["heatmap"].value
     assert third != first
-    from rnnkit._panel_data import window_times
+    from rnnkit.notebook._data import window_times
     states = d.window_states(3)
     assert third == render(sized("heatmap", plots.hidden_heatmap, states,
                                  times=window_times(trained.result, 3, len(states))))
@@ -319,7 +319,7 @@ def test_sequence_classification_draws_class_probabilities():
     assert "test_accuracy" in p.status.value
     assert _png_shape(p.views.images["forecast"].value)[1] > 300
     assert bytes(p.views.images["heatmap"].value).startswith(PNG_MAGIC)
-    from rnnkit._panel_data import forecast_frame
+    from rnnkit.notebook._data import forecast_frame
     shown = forecast_frame(p.result)
     assert set(shown["split"]) == {"test"} and any(str(c).startswith("p_") for c in shown.columns)
     assert isinstance(shown, pd.DataFrame)

@@ -8,7 +8,7 @@ import pytest
 
 import rnnkit
 from rnnkit import reference
-from rnnkit._config import ACTIVATIONS, MODES, TASKS
+from rnnkit.data._config import ACTIVATIONS, MODES, TASKS
 from tolerances import EXACT64, FINITE_DIFF
 
 # (B, T, I, H, O) per case; T = 1 and B = 1 included on purpose.
@@ -156,7 +156,7 @@ def test_check_gradients_table():
 
 def test_check_gradients_reports_a_wrong_gradient(monkeypatch):
     # The table must be able to fail: a gradient 1% too large shows as a 1% relative difference.
-    import rnnkit._gradcheck as gc
+    import rnnkit.inspection._gradcheck as gc
     monkeypatch.setattr(gc, "_jax_loss", lambda *a, **kw: 1.01 * rnnkit.loss(*a, **kw))
     p, xs, ys, _ = problem(12, (2, 3, 1, 2, 1), "regression", "many-to-one", False, "tanh")
     table = gc.check_gradients(p, xs, ys, mode="many-to-one")

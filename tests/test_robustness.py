@@ -615,7 +615,7 @@ def test_save_refuses_occupied_places_and_leaves_them_alone(tmp_path, fitted):
 def test_a_failed_save_leaves_the_old_fit_and_no_temporary(tmp_path, fitted, monkeypatch):
     fitted.save(tmp_path / "fit")
     before = {p.name: p.read_bytes() for p in (tmp_path / "fit").iterdir()}
-    import rnnkit._fit_io as fit_io
+    import rnnkit.fitting._fit_io as fit_io
 
     def broken(*a, **k):
         raise OSError("disk full (simulated)")
@@ -660,7 +660,7 @@ def test_save_config_into_a_folder_or_a_new_folder(tmp_path):
 def test_a_failed_config_write_keeps_the_old_file(tmp_path, monkeypatch):
     path = rnnkit.save_config(Config(hidden=7), tmp_path / "best.json")
     old = path.read_bytes()
-    import rnnkit._export as export
+    import rnnkit.sweeps._export as export
 
     def broken(*a, **k):
         raise OSError("no space (simulated)")
@@ -715,7 +715,7 @@ def test_sweep_store_that_is_a_folder_or_not_a_database(tmp_path, fitted):
 # ---------------------------------------------------------------- command line
 
 def test_cli_refuses_an_output_folder_that_is_a_file(tmp_path, capsys):
-    from rnnkit.__main__ import main
+    from rnnkit.cli import main
 
     series().to_csv(tmp_path / "data.csv", index=False)
     rnnkit.save_config(Config(**FAST, target="y"), tmp_path / "cfg.json")
@@ -728,7 +728,7 @@ def test_cli_refuses_an_output_folder_that_is_a_file(tmp_path, capsys):
 
 
 def test_cli_keeps_the_configured_time_column_as_a_column(tmp_path, capsys):
-    from rnnkit.__main__ import main
+    from rnnkit.cli import main
 
     df = series()
     df.insert(0, "when", pd.date_range("2024-03-30", periods=N, freq="h", tz="Europe/Berlin"))
@@ -741,7 +741,7 @@ def test_cli_keeps_the_configured_time_column_as_a_column(tmp_path, capsys):
 
 
 def test_cli_reads_a_first_column_of_local_times_across_dst_as_the_index(tmp_path, capsys):
-    from rnnkit.__main__ import read_data
+    from rnnkit.cli import read_data
 
     df = series()
     df.insert(0, "when", pd.date_range("2024-03-30", periods=N, freq="h", tz="Europe/Berlin"))

@@ -8,7 +8,7 @@ import threading
 import pytest
 
 from rnnkit import Config
-from rnnkit._store import RunStore, open_store, run_key
+from rnnkit.sweeps._store import RunStore, open_store, run_key
 
 FP = "sha256:" + "ab" * 32
 

@@ -18,9 +18,10 @@ import statsmodels.api as sm
 from scipy import stats
 
 import rnnkit
-from rnnkit import Config, DataError, _runner
-from rnnkit._plan import plan
-from rnnkit._sweep import _check_metric, sweep
+from rnnkit import Config, DataError
+from rnnkit.sweeps import _runner
+from rnnkit.sweeps._plan import plan
+from rnnkit.sweeps._sweep import _check_metric, sweep
 from tolerances import OTHER_PROCESS, SAME_RUN
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -277,7 +278,7 @@ def test_pool_workers_are_bound_to_one_core_each(tmp_path):
     probe = tmp_path / "probe.py"
     probe.write_text(textwrap.dedent("""
         import json, os, time
-        from rnnkit import _runner
+        from rnnkit.sweeps import _runner
 
         def where(_):
             time.sleep(0.5)  # keeps a worker busy so that both take tasks
@@ -333,7 +334,7 @@ def test_any_executor_stop_and_errors(sunspots, tmp_path, monkeypatch):
 
     def broken(*args, **kwargs):
         raise RuntimeError("a bug, not bad data")
-    monkeypatch.setattr("rnnkit._runner.fit", broken)
+    monkeypatch.setattr("rnnkit.sweeps._runner.fit", broken)
     with ThreadPoolExecutor(max_workers=2) as pool, pytest.raises(RuntimeError, match="a bug"):
         sweep(sunspots, BASE, {"window": [5, 6]}, executor=pool, store=db, progress=False)
 

@@ -8,10 +8,10 @@ import pandas as pd
 import pytest
 
 from rnnkit import Config, prepare
-from rnnkit._model import loss as model_loss
-from rnnkit._model import outputs as model_outputs
-from rnnkit._optim import hyperparams, init_state, make_optimizer
-from rnnkit._train import _judge, compile_count, evaluate, initial_params, shape_plan, train
+from rnnkit.recurrent._model import loss as model_loss
+from rnnkit.recurrent._model import outputs as model_outputs
+from rnnkit.training._optim import hyperparams, init_state, make_optimizer
+from rnnkit.training._train import _judge, compile_count, evaluate, initial_params, shape_plan, train
 from tolerances import EXACT32, EXACT64, PADDED32
 
 # Most tests share these sizes so that they share one compiled epoch program.

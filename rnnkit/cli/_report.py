@@ -1,0 +1,112 @@
+"""A self-contained HTML report of a fit (and a sweep): figures embedded as PNG."""
+from __future__ import annotations
+
+import base64
+import html
+import io
+from datetime import datetime, timezone
+from pathlib import Path
+
+import pandas as pd
+
+from ..data._atomic import write_text
+
+_CSS = """
+body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 76rem; color: #1d2430; }
+h1 { font-size: 1.5rem; } h2 { font-size: 1.15rem; margin-top: 2rem; border-bottom: 1px solid #ccd; }
+table { border-collapse: collapse; font-size: 0.85rem; margin: 0.5rem 0; }
+td, th { border: 1px solid #d5d9e0; padding: 0.2rem 0.5rem; text-align: right; }
+th { background: #eef1f6; }
+figure { display: inline-block; margin: 0.4rem; vertical-align: top; width: 36rem; }
+figcaption { font-size: 0.8rem; color: #555; max-width: 32rem; }
+img { max-width: 36rem; }
+.wide { overflow-x: auto; }
+.note { background: #fff8e6; border-left: 4px solid #e0a800; padding: 0.5rem 1rem; }
+"""
+
+_CAPTIONS = {
+    "training": "Training and validation loss per epoch; the best epoch is the one kept.",
+    "metrics": "Validation score of the network beside the baselines.",
+    "forecast": "Actual against predicted values on the original time index.",
+    "forecast_recent": "The last steps of the test range, up close.",
+    "gradient_flow": "Mean norm of dL/dh_k over the window: steep decay means the network "
+                     "cannot learn from early steps (vanishing gradients).",
+    "spectrum": "Singular values of the recurrent matrix V; values above 1 can make "
+                "gradients explode.",
+    "hidden_states": "Hidden units over the steps of one validation window.",
+    "hidden_path": "The hidden state over the validation range, projected on its first "
+                   "two principal components.",
+    "loss_surface": "Validation loss on a plane through the trained weights along two "
+                    "filter-normalised random directions (Li et al. 2018).",
+    "loss_slice": "Validation loss along a random direction in the recurrent matrix V.",
+    "sweep_surface": "Mean validation metric over two swept settings.",
+}
+
+
+_RECENT = 300  # test rows shown up close
+
+
+def _png(fig) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _table(frame: pd.DataFrame, index: bool = True) -> str:
+    inner = frame.to_html(index=index, float_format=lambda v: f"{v:.4g}", border=0)
+    return f"<div class='wide'>{inner}</div>"
+
+
+def report_figures(result, sweep_result=None) -> dict:
+    """Every figure of the report, by name: the fit's own, loss surfaces, the sweep surface."""
+    from .. import plots
+    from ..inspection._surface import loss_slice, loss_surface
+
+    figs = dict(result.figures())
+    if result.prepared is not None and result.config.task == "regression" and \
+            result.config.window != "full":
+        pred = result.predict()
+        if "split" in pred.columns:
+            recent = pred[pred["split"] == "test"].iloc[-_RECENT:]
+            if len(recent) >= 2:  # shown right after the full forecast
+                ordered = {}
+                for name, fig in figs.items():
+                    ordered[name] = fig
+                    if name == "forecast":
+                        ordered["forecast_recent"] = plots.forecast(recent)
+                figs = ordered
+    if result.prepared is not None:
+        alphas, betas, values = loss_surface(result, steps=15)
+        figs["loss_surface"] = plots.loss_surface(alphas, betas, values)
+        a1, v1 = loss_slice(result, steps=31)
+        figs["loss_slice"] = plots.loss_slice(a1, v1, label="V")
+    if sweep_result is not None:
+        varied = [c for c in sweep_result.varied if sweep_result.table[c].nunique() > 1]
+        if len(varied) >= 2:
+            figs["sweep_surface"] = plots.sweep_surface(sweep_result.table, varied[0], varied[1],
+                                                        metric=sweep_result.metric)
+    return figs
+
+
+def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report") -> Path:
+    """Write one HTML file with the fit's tables and figures (and the sweep's), atomically."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    figs = report_figures(result, sweep_result)
+    parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}"
+             f"</title><style>{_CSS}</style></head><body><h1>{html.escape(title)}</h1>",
+             f"<p>Written {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC. "
+             f"Status of the fit: <b>{html.escape(str(result.status))}</b>.</p>",
+             "<p class='note'>A forecast supports a decision; it does not make one. Check it on "
+             "recent data, watch for changes in the process that produced the data, and compare "
+             "with the baselines below before relying on it.</p>",
+             "<h2>Scores</h2>", _table(result.metrics)]
+    if sweep_result is not None:
+        parts += ["<h2>Sweep, ranked</h2>", _table(sweep_result.summary().head(30), index=False)]
+    parts.append("<h2>Figures</h2>")
+    for name, fig in figs.items():
+        parts.append(f"<figure><img alt='{name}' src='data:image/png;base64,{_png(fig)}'>"
+                     f"<figcaption>{html.escape(_CAPTIONS.get(name, name))}</figcaption></figure>")
+    parts.append("<h2>Configuration</h2><pre>" + html.escape(result.config.to_json()) + "</pre>")
+    parts.append("</body></html>")
+    return write_text(path, "\n".join(parts))

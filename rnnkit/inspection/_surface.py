@@ -1,0 +1,188 @@
+"""Loss surfaces around the trained weights, with filter-normalised directions.
+
+Li, Xu, Taylor, Studer & Goldstein (2018), "Visualizing the loss landscape of
+neural nets": a random direction d has the scale of the weights it moves
+only after "filter normalisation": for every unit, its slice of d is rescaled
+to the norm of the same slice of the weights; biases are left still (d = 0).
+In our row-vector network a unit's incoming weights are a COLUMN of U, V and
+W (a_t = x_t U + h_{t-1} V + b, o_t = h_t W + c), so the columns are rescaled.
+
+Every point of the grid is evaluated by ONE jitted program: ``lax.map`` over
+the grid with a ``batch_size``, i.e. vmap over as many points at a time as
+fit in memory.
+"""
+from __future__ import annotations
+
+import math
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from jax import lax
+
+from ..recurrent._model import loss as model_loss
+
+# Floats one grid point may use in a vmapped batch (states of every window).
+_BATCH_ELEMENTS = 2 ** 24
+_MATRICES = ("U", "V", "W")
+
+
+def filter_normalised(direction: dict, params: dict) -> dict:
+    """Rescale each unit's column of every weight matrix to the weights' column norm; zero biases.
+
+    Args:
+      direction: dict like params (U (I,H), V (H,H), b (H,), W (H,O), c (O,)).
+      params: the trained weights.
+
+    Returns:
+      dict of the same shapes: for a matrix, column j of the result has the norm
+      of column j of the weights; vectors (biases) are zero.
+    """
+    out = {}
+    for k, w in params.items():
+        w = jnp.asarray(w)
+        d = jnp.asarray(direction[k], w.dtype)
+        if w.ndim < 2:
+            out[k] = jnp.zeros_like(w)
+            continue
+        w_norm = jnp.linalg.norm(w, axis=0, keepdims=True)  # (1, units)
+        d_norm = jnp.linalg.norm(d, axis=0, keepdims=True)
+        tiny = jnp.asarray(jnp.finfo(w.dtype).tiny, w.dtype)
+        out[k] = d * (w_norm / jnp.maximum(d_norm, tiny))
+    return out
+
+
+def random_direction(key, params: dict) -> dict:
+    """A standard-normal direction with the shapes and dtypes of ``params``, filter-normalised."""
+    keys = jax.random.split(key, len(params))
+    raw = {k: jax.random.normal(kk, jnp.shape(v), jnp.asarray(v).dtype)
+           for kk, (k, v) in zip(keys, sorted(params.items()))}
+    return filter_normalised(raw, params)
+
+
+@partial(jax.jit, static_argnames=("act", "task", "mode", "batch"))
+def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch):
+    """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,)."""
+
+    def at(ab):
+        p = {k: params[k] + ab[0] * d1[k] + ab[1] * d2[k] for k in params}
+        return model_loss(p, xs, ys, activation=act, task=task, mode=mode, mask=mask)
+
+    return lax.map(at, points, batch_size=batch)
+
+
+def _data(result, split):
+    prepared = getattr(result, "prepared", None)
+    if prepared is None:
+        raise ValueError("this FitResult has no data attached (it was loaded from disk); "
+                         "use load_fit(path, df=<the training frame>) to attach it")
+    if split not in ("train", "val", "test"):
+        raise ValueError(f"`split` (={split!r}) must be 'train', 'val' or 'test'")
+    if len(prepared.starts[split]) == 0:
+        raise ValueError(f"the {split!r} split has no window; choose another `split`")
+    return prepared
+
+
+def _axis(steps, span, name="steps"):
+    if isinstance(steps, bool) or not isinstance(steps, (int, np.integer)) or not 2 <= steps <= 401:
+        raise ValueError(f"`{name}` (={steps!r}) must be a whole number from 2 to 401")
+    if isinstance(span, bool) or not isinstance(span, (int, float)) or not math.isfinite(span) \
+            or span <= 0:
+        raise ValueError(f"`span` (={span!r}) must be a finite number > 0")
+    a = np.linspace(-float(span), float(span), int(steps))
+    if steps % 2:
+        a[steps // 2] = 0.0  # the trained point exactly
+    return a
+
+
+def _evaluate(result, split, d1, d2, points):
+    """Loss at every grid point (P,) as float64 numpy, in the config's dtype."""
+    from ..training._train import precision
+
+    prepared = result.prepared
+    cfg = prepared.config
+    dtype = np.dtype(cfg.dtype)
+    x, y, mask = prepared.windows(split)
+    n, T = x.shape[:2]
+    width = max(int(np.shape(result.params["V"])[0]), x.shape[2])
+    batch = int(max(1, min(len(points), _BATCH_ELEMENTS // max(n * T * width, 1))))
+    with precision(cfg.dtype):
+        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in result.params.items()}
+        d1 = {k: jnp.asarray(v, dtype) for k, v in d1.items()}
+        d2 = {k: jnp.asarray(v, dtype) for k, v in d2.items()}
+        ys = jnp.asarray(y) if cfg.task == "classification" else jnp.asarray(y, dtype)
+        values = _grid_losses(p, d1, d2, jnp.asarray(points, dtype), jnp.asarray(x, dtype), ys,
+                              None if mask is None else jnp.asarray(mask), act=cfg.activation,
+                              task=cfg.task, mode=cfg.mode, batch=batch)
+    return np.asarray(values, np.float64)
+
+
+def _directions(result, seed, how_many):
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ValueError(f"`seed` (={seed!r}) must be a whole number >= 0")
+    from ..training._train import precision
+
+    dtype = np.dtype(result.prepared.config.dtype)
+    with precision(dtype.name):
+        params = {k: jnp.asarray(np.asarray(v), dtype) for k, v in result.params.items()}
+        keys = jax.random.split(jax.random.key(int(seed)), how_many)
+        return params, [{k: np.asarray(v) for k, v in random_direction(kk, params).items()}
+                        for kk in keys]
+
+
+def loss_surface(result, *, split: str = "val", steps: int = 21, span: float = 1.0, seed: int = 0):
+    """The loss on a plane through the trained weights: theta + alpha d1 + beta d2.
+
+    d1 and d2 are random, filter-normalised directions (Li et al. 2018); the
+    loss is the model's loss (scaled units) over every window of ``split``.
+
+    Args:
+      result: a FitResult with its data (from ``fit``, or ``load_fit(path, df=...)``).
+      split: "train", "val" or "test".
+      steps: grid points per axis (odd: the trained point is on the grid).
+      span: the grid covers [-span, span] in units of the weights' own norms.
+      seed: seeds the two directions.
+
+    Returns:
+      (alphas (steps,), betas (steps,), values (steps, steps)) with values[i, j]
+      the loss at (alphas[j], betas[i]), as ``rnnkit.plots.loss_surface`` takes it.
+
+    Example:
+      >>> a, b, v = loss_surface(result, steps=11)
+      >>> fig = rnnkit.plots.loss_surface(a, b, v)
+    """
+    _data(result, split)
+    alphas = _axis(steps, span)
+    _, (d1, d2) = _directions(result, seed, 2)
+    aa, bb = np.meshgrid(alphas, alphas)  # (steps, steps): rows follow beta
+    points = np.stack([aa.ravel(), bb.ravel()], axis=1)  # (P, 2)
+    values = _evaluate(result, split, d1, d2, points).reshape(len(alphas), len(alphas))
+    return alphas, alphas.copy(), values
+
+
+def loss_slice(result, *, param: str = "V", split: str = "val", steps: int = 41,
+               span: float = 1.0, seed: int = 0):
+    """The loss along one random filter-normalised direction that moves only one matrix.
+
+    With ``param="V"`` this shows how sharply the loss depends on the recurrent
+    matrix alone, every other weight held at its trained value.
+
+    Args:
+      result: a FitResult with its data.
+      param: "V" (default), "U" or "W".
+      split, steps, span, seed: as ``loss_surface``.
+
+    Returns:
+      (alphas (steps,), values (steps,)).
+    """
+    if param not in _MATRICES:
+        raise ValueError(f"`param` (={param!r}) must be one of {list(_MATRICES)} (biases have no "
+                         "filter-normalised direction: Li et al. 2018 keep them still)")
+    _data(result, split)
+    alphas = _axis(steps, span)
+    _, (d,) = _directions(result, seed, 1)
+    d1 = {k: (v if k == param else np.zeros_like(v)) for k, v in d.items()}
+    d2 = {k: np.zeros_like(v) for k, v in d.items()}
+    points = np.stack([alphas, np.zeros_like(alphas)], axis=1)  # (steps, 2)
+    return alphas, _evaluate(result, split, d1, d2, points)

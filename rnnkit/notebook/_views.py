@@ -1,0 +1,311 @@
+"""The panel's figures and tables: results in, PNG images and HTML tables out.
+
+Every figure comes from ``rnnkit.plots``; this module only picks the data a
+figure is drawn from (a FitResult's history, predictions, diagnostics and loss
+surfaces; a SweepResult's table), renders it to PNG bytes for an
+``ipywidgets.Image`` and closes it. Images work the same in JupyterLab and in
+headless tests, and setting ``.value`` from the worker thread syncs.
+"""
+from __future__ import annotations
+
+import html
+import io
+from typing import Callable
+
+import ipywidgets as widgets
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from .. import plots
+from ._data import (baseline_series, forecast_frame, gradient_factor, gradient_norms,
+                          headline, loss_planes, score_column, sweep_headline, window_times)
+
+DPI = 100
+# Figure sizes in inches: one figure across the page, or two side by side.
+WIDE = (7.6, 3.6)
+HALF = (4.7, 3.5)
+SIZES = {"training": WIDE, "forecast": WIDE, "gradient": HALF, "spectrum": HALF,
+         "heatmap": HALF, "path": HALF, "surface": HALF, "slice": HALF, "sweep": (6.4, 4.0),
+         "scores": (7.0, 2.9)}
+
+
+def sized(name: str, builder: Callable[..., Figure], *args, **kwargs) -> Figure:
+    """``builder(*args, **kwargs)`` drawn into a fresh Figure of the page's size for `name`."""
+    fig = Figure(figsize=SIZES[name], layout="constrained")
+    return builder(*args, ax=fig.add_subplot(), **kwargs)
+
+
+def render(fig: Figure) -> bytes:
+    """PNG bytes of `fig`; the figure is emptied afterwards so nothing holds on to it."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI, facecolor="white")
+    fig.clear()  # plots builds figures outside pyplot: dropping the last reference frees them
+    return buf.getvalue()
+
+
+def png_width(png: bytes) -> int:
+    """Pixel width of PNG bytes (the IHDR chunk's first field)."""
+    return int.from_bytes(bytes(png[16:20]), "big")
+
+
+def _image(name: str) -> widgets.Image:
+    img = widgets.Image(format="png", layout=widgets.Layout(width="100%", height="auto",
+                                                             display="none"))
+    img.add_class("rnnkit-fig-" + name)
+    return img
+
+
+def _note(text: str) -> widgets.HTML:
+    return widgets.HTML(f"<div style='color:#777;margin:4px 0'>{html.escape(text)}</div>")
+
+
+def _cell(v) -> str:
+    if isinstance(v, (float, np.floating)):
+        return "" if np.isnan(v) else f"{v:.4g}"
+    return html.escape(str(v))
+
+
+def _table_html(df: pd.DataFrame, caption: str) -> str:
+    """A compact HTML table (index as the first column, numbers to 4 significant digits).
+
+    Inline styles only, so that it looks the same in JupyterLab, classic
+    notebooks and exported HTML.
+    """
+    pad = "padding:2px 10px;border:none;"
+    head = "".join(f"<th style='{pad}text-align:right;border-bottom:1px solid #bbb'>"
+                   f"{html.escape(str(c))}</th>" for c in [df.index.name or ""] + list(df.columns))
+    rows = []
+    for k, (label, row) in enumerate(df.iterrows()):
+        bg = "#f3f5f7" if k % 2 else "white"
+        cells = "".join(f"<td style='{pad}text-align:right'>{_cell(v)}</td>" for v in row)
+        rows.append(f"<tr style='background:{bg}'><td style='{pad}text-align:left;font-weight:600'>"
+                    f"{_cell(label)}</td>{cells}</tr>")
+    return (f"<div style='font-weight:600;margin:8px 0 4px'>{html.escape(caption)}</div>"
+            "<div style='overflow-x:auto'><table style='border-collapse:collapse;font-size:12px;"
+            f"line-height:1.5'><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody>"
+            "</table></div>")
+
+
+def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
+    a.layout.width = b.layout.width = "50%"
+    # flex-start: images keep their own aspect instead of stretching to the taller one.
+    return widgets.HBox([a, b], layout=widgets.Layout(width="100%", align_items="flex-start"))
+
+
+class FigureViews:
+    """The right-hand pages of the panel: one ipywidgets.Tab of figures and tables."""
+
+    PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Scores", "JSON")
+
+    def __init__(self):
+        names = ("training", "forecast", "gradient", "spectrum", "heatmap", "path", "surface",
+                 "slice", "sweep", "scores")
+        self.images = {n: _image(n) for n in names}
+        self.notes = {p: _note("Press Train to draw this page.") for p in self.PAGES}
+        self.notes["Sweep"].value = self.notes["Sweep"].value.replace("Train", "Sweep")
+        self.notes["JSON"].value = self.notes["JSON"].value.replace(
+            "Press Train to draw this page.", "Save or load a config to show its JSON here.")
+        self.window_slider = widgets.IntSlider(
+            description="window #", min=0, max=0, value=0, continuous_update=False,
+            style={"description_width": "70px"}, layout=widgets.Layout(width="420px"))
+        self.window_slider.add_class("rnnkit-window-slider")
+        self.sweep_x = widgets.Dropdown(description="across", options=(),
+                                        layout=widgets.Layout(width="220px"))
+        self.sweep_y = widgets.Dropdown(description="down", options=(),
+                                        layout=widgets.Layout(width="220px"))
+        self.sweep_table = widgets.HTML()
+        self.sweep_table.add_class("rnnkit-sweep-table")
+        self.metrics_table = widgets.HTML()
+        self.metrics_table.add_class("rnnkit-metrics-table")
+        self.diagnostics_table = widgets.HTML()
+        self.document = widgets.HTML()
+        self.document.add_class("rnnkit-document")
+        self.result = None
+        self.sweep_result = None
+        self._quiet = False  # True while the slider is being reset with a new result
+
+        i = self.images
+        pages = {
+            "Training": [i["training"]],
+            "Forecast": [i["forecast"]],
+            "Gradients": [_pair(i["gradient"], i["spectrum"]), self.diagnostics_table],
+            "States": [self.window_slider, _pair(i["heatmap"], i["path"])],
+            "Surface": [_pair(i["surface"], i["slice"])],
+            "Sweep": [widgets.HBox([self.sweep_x, self.sweep_y]), i["sweep"], self.sweep_table],
+            "Scores": [self.metrics_table, i["scores"]],
+            "JSON": [self.document],
+        }
+        self.tab = widgets.Tab(
+            children=[widgets.VBox([self.notes[p], *kids], layout=widgets.Layout(padding="6px"))
+                      for p, kids in pages.items()],
+            titles=self.PAGES, layout=widgets.Layout(flex="1 1 auto", min_width="560px"))
+        self.tab.add_class("rnnkit-pages")
+        self.widget = self.tab
+        self.window_slider.observe(self._on_window, names="value")
+        self.sweep_x.observe(self._on_axes, names="value")
+        self.sweep_y.observe(self._on_axes, names="value")
+
+    def select(self, page: str) -> None:
+        self.tab.selected_index = self.PAGES.index(page)
+
+    # --- a trained network ---
+    def _draw(self, page: str, image: str, make: Callable[[], Figure]) -> bool:
+        """Render one figure into its image; a failure blanks it and says why on its page."""
+        try:
+            self.set_image(image, render(make()))
+            return True
+        except Exception as e:  # one figure that cannot be drawn must not stop the others
+            self.set_image(image, b"")
+            self._note(page, f"{image} figure not drawn: {type(e).__name__}: {e}")
+            return False
+
+    def set_image(self, name: str, png: bytes) -> None:
+        """Show PNG bytes in one image; empty bytes hide it (no broken-image icon)."""
+        img = self.images[name]
+        img.value = png
+        img.layout.display = None if png else "none"
+        if png:  # never scaled up past its own pixels: text keeps its size
+            img.layout.max_width = f"{png_width(png)}px"
+
+    def show_fit(self, result) -> None:
+        """Draw every page of one FitResult except the loss surfaces (called in the worker thread)."""
+        self.result = result
+        cfg = result.config
+        self._note("Training", "Loss per epoch in scaled units; the star marks the epoch whose "
+                               "weights are kept; dotted: the gradient norm before clipping.")
+        self._draw("Training", "training",
+                   lambda: sized("training", plots.training_curves, result.history,
+                                 status=str(result.status)))
+
+        pred = forecast_frame(result)
+        if cfg.task == "classification":
+            self._note("Forecast", "Held-out range: class probabilities, with the actual and the "
+                                   "predicted class in the strips above.")
+            self._draw("Forecast", "forecast", lambda: sized("forecast", plots.class_forecast, pred))
+        else:
+            base_name, base = baseline_series(result, pred.index)
+            self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
+                                   f"({base_name}).")
+            target = ", ".join(result.prepared.target_names)
+
+            def make():
+                fig = sized("forecast", plots.forecast, pred, baseline=base, baseline_name=base_name)
+                fig.axes[0].set_ylabel(target)  # a single target's columns carry no name
+                return fig
+
+            self._draw("Forecast", "forecast", make)
+
+        metrics = result.metrics
+        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
+        column = score_column(metrics, cfg.task)
+        self._note("Scores", "Every model scored on the same targets, in the target's own units "
+                             "(MASE: against the in-sample naive forecast).")
+        self._draw("Scores", "scores", lambda: sized("scores", plots.metrics_bar, metrics,
+                                                           column=column, highlight="rnn"))
+
+        d = result.diagnostics
+        sigma = float(d.singular_values[0])
+        factor = sigma * gradient_factor(cfg.activation)
+        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. Dashed: the "
+                                f"bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
+                                + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+        self._draw("Gradients", "gradient", lambda: sized(
+            "gradient", plots.gradient_flow, gradient_norms(d),
+            sigma_max=factor if factor > 0 else None))
+        self._draw("Gradients", "spectrum", lambda: sized("spectrum", plots.spectrum,
+                                                            d.singular_values))
+        self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
+
+        n = int(d.val_states.shape[0])
+        self._note("States", f"Left: one {d.split} window, units x steps (the slider picks "
+                                   f"one of {n}). Right: the last state of every {d.split} window "
+                                   "on its first two principal components.")
+        self._quiet = True
+        self.window_slider.value = 0
+        self.window_slider.max = max(n - 1, 0)
+        self._quiet = False
+        self._draw_window(0)
+        self._draw("States", "path", lambda: sized("path", plots.hidden_path, d.val_states,
+                                                    times=d.val_times))
+        self.set_image("surface", b"")
+        self.set_image("slice", b"")
+        self._note("Surface", "Drawing...")
+
+    def show_surfaces(self, result) -> None:
+        """Draw the loss-surface page (the slowest: many loss evaluations)."""
+        (a, b, surface), (s, values) = loss_planes(result)
+        self._note("Surface", "Left: validation loss on a random plane through the trained "
+                                   "weights, filter-normalised (Li et al. 2018). Right: along a "
+                                   "random direction in V only.")
+        self._draw("Surface", "surface", lambda: sized("surface", plots.loss_surface, a, b, surface))
+        self._draw("Surface", "slice", lambda: sized("slice", plots.loss_slice, s, values,
+                                                                label="V"))
+
+    def _note(self, page: str, text: str) -> None:
+        self.notes[page].value = (f"<div style='color:#555;margin:2px 0 6px'>{html.escape(text)}</div>"
+                                  if text else "")
+
+    def _draw_window(self, i: int) -> None:
+        r = self.result
+
+        def make():
+            states = r.diagnostics.window_states(int(i))  # (T, H)
+            return sized("heatmap", plots.hidden_heatmap, states,
+                         times=window_times(r, int(i), len(states)))
+
+        self._draw("States", "heatmap", make)
+
+    def _on_window(self, change) -> None:
+        if self._quiet or self.result is None:
+            return
+        self._draw_window(change["new"])
+
+    # --- a sweep ---
+    def show_sweep(self, result) -> None:
+        """Draw the sweep page of one SweepResult (called in the worker thread)."""
+        self.sweep_result = result
+        axes = [f for f in result.varied] + ["seed"]
+        x = "window" if "window" in axes else axes[0]
+        y = "hidden" if "hidden" in axes and x != "hidden" else next(a for a in axes if a != x)
+        self._quiet = True
+        self.sweep_x.options = axes
+        self.sweep_y.options = axes
+        self.sweep_x.value, self.sweep_y.value = x, y
+        self._quiet = False
+        self._draw_sweep()
+        summary = result.summary().set_index("rank")
+        m = result.metric
+        keep = list(result.varied) + ["runs", m, f"{m}_std", "seed_spread",
+                                      m.replace("val_", "test_", 1), "diverged", "failed"]
+        keep = list(dict.fromkeys(c for c in keep if c in summary.columns))
+        self.sweep_table.value = _table_html(
+            summary[keep], f"settings ranked by {m}: mean over seeds, its standard deviation "
+                           "and seed_spread (max - min over seeds)")
+        self._note("Sweep", f"{len(result.table)} runs; {result.missing} not run." if result.missing
+                   else f"{len(result.table)} runs.")
+        self.select("Sweep")
+
+    def _draw_sweep(self) -> None:
+        r = self.sweep_result
+        x, y = self.sweep_x.value, self.sweep_y.value
+        if x == y:
+            self._note("Sweep", "Pick two different settings for the two axes.")
+            return
+        self._draw("Sweep", "sweep", lambda: sized("sweep", plots.sweep_surface, r.table, x, y,
+                                                          metric=r.metric))
+
+    def _on_axes(self, change) -> None:
+        if not self._quiet and self.sweep_result is not None:
+            self._draw_sweep()
+
+    # --- the config file ---
+    def show_document(self, path: str, text: str) -> None:
+        self.document.value = (f"<div style='color:#555'>{html.escape(path)}</div>"
+                               "<pre style='font-size:12px;line-height:1.3;background:#f6f8fa;"
+                               f"padding:8px;max-height:520px;overflow:auto'>{html.escape(text)}</pre>")
+        self._note("JSON", "")
+        self.select("JSON")
+
+    headline = staticmethod(headline)
+    sweep_headline = staticmethod(sweep_headline)

@@ -1,0 +1,235 @@
+"""sweep(): plan, run, store; and SweepResult, the table of runs with its summary.
+
+A sweep is three small pieces composed: ``plan`` (Config + space -> Configs),
+``run`` (Configs -> stored records, serially or in parallel) and the run store
+(SQLite). ``sweep`` is only their composition plus the table.
+
+Example:
+    >>> res = sweep(df, Config(target="load_kw", epochs=10),
+    ...             {"window": [24, 48], "hidden": [16, 32]}, seeds=3, store="load.db")
+    >>> res.summary().head()
+    >>> res.export("best.json")
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import re
+from typing import Callable, Optional, Sequence, Union
+
+import numpy as np
+import pandas as pd
+
+from ..data._config import Config
+from ..data._errors import DataError
+from ._export import document, write_document
+from ._plan import plan
+from ._runner import run
+
+METRICS = {"regression": ("mae", "rmse", "mase", "r2"),
+           "classification": ("accuracy", "balanced_accuracy", "log_loss")}
+HIGHER_IS_BETTER = ("accuracy", "balanced_accuracy", "r2")
+DEFAULT_METRIC = {"regression": "val_rmse", "classification": "val_log_loss"}
+RUN_COLUMNS = ("seed", "status", "epochs", "seconds", "compiles")
+
+
+def higher_is_better(metric: str) -> bool:
+    """Whether a larger value of `metric` (e.g. "val_accuracy") is better."""
+    return metric.endswith(tuple("_" + m for m in HIGHER_IS_BETTER))
+
+
+def _check_metric(metric: Optional[str], task: str) -> str:
+    if metric is None:
+        return DEFAULT_METRIC[task]
+    names = "|".join(METRICS[task])
+    pattern = rf"(?:[a-z0-9_]+_)?(?:val|test)_(?:{names})"
+    if not isinstance(metric, str) or not re.fullmatch(pattern, metric):
+        raise ValueError(f"`metric` (={metric!r}) is not a {task} score; use '<split>_<metric>' "
+                         f"with split val or test and metric one of {METRICS[task]} "
+                         f"(e.g. {DEFAULT_METRIC[task]!r}), "
+                         "or a baseline's score such as 'persistence_val_rmse'")
+    return metric
+
+
+def _missing(v) -> bool:
+    return v is None or (isinstance(v, float) and np.isnan(v))
+
+
+def _same(a, b) -> bool:
+    """Equal settings; None and NaN (how groupby hands back a None key) count as one."""
+    return (_missing(a) and _missing(b)) or (not _missing(a) and not _missing(b) and a == b)
+
+
+def _hashable(v):
+    return tuple(v) if isinstance(v, list) else v
+
+
+class SweepResult:
+    """The runs of a sweep: ``table`` (one row per run), ``summary()``, ``best()``, ``export()``.
+
+    Attributes:
+        table: DataFrame, one row per finished run, in plan order: every varied
+            field, seed, status, epochs, seconds, compiles, the network's
+            validation and test scores ("val_rmse", ...), the baselines' scores
+            ("persistence_val_rmse", ...), message (why a run failed) and key.
+        metric: the score runs are ranked by.
+        varied: the Config fields the space varies.
+        config: the base Config.
+        missing: planned runs that did not run (the sweep was stopped).
+    """
+
+    def __init__(self, records: Sequence[dict], *, metric: str, varied: Sequence[str], config: Config,
+                 planned: int, df: Optional[pd.DataFrame] = None):
+        self.metric, self.varied, self.config = metric, list(varied), config
+        self.missing = planned - len(records)
+        self._df = df
+        self._configs = {r["key"]: Config.from_dict(r["config"]) for r in records}
+        rows, metric_cols = [], {}
+        for r in records:
+            c = self._configs[r["key"]]
+            row = {f: _hashable(getattr(c, f)) for f in self.varied}
+            row.update(seed=c.seed, status=r["status"], epochs=r["epochs"], seconds=r["seconds"],
+                       compiles=r["compiles"])
+            for k, v in r["metrics"].items():
+                metric_cols.setdefault(k, None)
+                row[k] = np.nan if v is None else v
+            row.update(message=r["message"], key=r["key"])
+            rows.append(row)
+        own = [k for k in metric_cols if k.startswith(("val_", "test_"))]
+        others = [k for k in metric_cols if k not in own]
+        cols = self.varied + list(RUN_COLUMNS) + own + others + ["message", "key"]
+        self.table = pd.DataFrame(rows, columns=cols)
+        for k in metric_cols:
+            self.table[k] = self.table[k].astype(np.float64)
+
+    def _require_metric(self):
+        if self.metric not in self.table.columns:
+            raise ValueError(f"no run has the score `metric`={self.metric!r}; the scores are "
+                             f"{[c for c in self.table.columns if c.startswith(('val_', 'test_'))]}; "
+                             "pass one of them as metric")
+
+    def summary(self) -> pd.DataFrame:
+        """One row per setting: mean and spread over seeds, ranked by the metric.
+
+        Returns:
+            DataFrame with the varied fields, ``rank``, ``runs``, the metric's
+            mean (named as the metric), ``<metric>_std`` (sample std over
+            seeds), ``seed_spread`` (max - min over seeds), the test score and
+            the baselines' mean for the same metric, ``diverged`` and ``failed``
+            (shares of the setting's runs). Best first (lower is better except
+            for accuracy, balanced_accuracy and r2); settings without a score last.
+        """
+        self._require_metric()
+        t, m = self.table, self.metric
+        g = t.groupby(self.varied, dropna=False, sort=False)
+        out = pd.DataFrame({"runs": g.size(), m: g[m].mean(), f"{m}_std": g[m].std(ddof=1),
+                            "seed_spread": g[m].max() - g[m].min()})
+        split_metric = re.fullmatch(r"(?:.*_)?(val|test)_(.+)", m)
+        related = [c for c in t.columns if c != m and c.endswith("_" + split_metric.group(2))
+                   and c not in self.varied]
+        for c in related:
+            out[c] = g[c].mean()
+        out["diverged"] = g["status"].agg(lambda s: float(s.str.startswith("diverged").mean()))
+        out["failed"] = g["status"].agg(lambda s: float((s == "failed").mean()))
+        out = out.sort_values(m, ascending=not higher_is_better(m), na_position="last", kind="stable")
+        out.insert(0, "rank", np.arange(1, len(out) + 1))
+        return out.reset_index()
+
+    def best_run(self) -> pd.Series:
+        """The table row of the winner: the best setting's run nearest its mean over seeds
+        (a typical seed, not the luckiest one)."""
+        top = self.summary().iloc[0]
+        if not np.isfinite(top[self.metric]):
+            raise ValueError(f"no run has a finite {self.metric!r}; every run failed or diverged "
+                             "(see the table's status and message columns)")
+        t = self.table
+        same = np.ones(len(t), bool)
+        for f in self.varied:
+            same &= np.array([_same(v, top[f]) for v in t[f]], dtype=bool)
+        runs = t[same & np.isfinite(t[self.metric].to_numpy())]
+        return runs.loc[(runs[self.metric] - top[self.metric]).abs().idxmin()]
+
+    def best(self) -> Config:
+        """The winning Config (see ``best_run``), seed included, ready for ``fit``."""
+        return self._configs[self.best_run()["key"]]
+
+    def export(self, path, *, notes: Optional[str] = None):
+        """Write the winner as an experiment document (JSON, checked, atomic); returns the Path."""
+        row = self.best_run()
+        metrics = {k: row[k] for k in self.table.columns if k.startswith(("val_", "test_"))
+                   or re.fullmatch(r".+_(val|test)_.+", k)}
+        data = self._df if self._df is not None else None
+        doc = document(self._configs[row["key"]], metric=(self.metric, row[self.metric]),
+                       metrics=metrics, data=data, notes=notes)
+        return write_document(doc, path)
+
+    def __repr__(self) -> str:
+        n = len(self.table)
+        counts = self.table["status"].str.replace(r" at epoch \d+", "", regex=True).value_counts()
+        text = ", ".join(f"{v} {k}" for k, v in counts.items())
+        more = f", {self.missing} not run" if self.missing else ""
+        return f"SweepResult({n} runs: {text}{more}; varied {self.varied}; metric {self.metric!r})"
+
+
+def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: str = "grid",
+          n_samples: Optional[int] = None, seeds: Union[int, Sequence[int]] = 1,
+          metric: Optional[str] = None, workers: int = 1, executor: Optional[cf.Executor] = None,
+          store=None, progress: bool = True, stop=None,
+          on_run: Optional[Callable[[dict], None]] = None) -> SweepResult:
+    """Train every setting of a search space, store each run as it finishes, rank them.
+
+    Args:
+        df: the frame (never modified).
+        config: base Config (None: defaults); fields not in `space` keep its values.
+        space: Config field -> list of values; strategy="random" also takes ranges
+            {"low", "high", "log", "int"}.
+        strategy: "grid" or "random".
+        n_samples: settings to draw (random only).
+        seeds: seeds per setting (count: config.seed + 0..n-1) or a list of seeds.
+        metric: score to rank by; default "val_rmse" (regression) / "val_log_loss"
+            (classification).
+        workers: processes to run in (1: this process). Each worker is a spawned
+            process bound to one core (round robin), so XLA and BLAS run one
+            thread there; results equal the serial run's to float32 rounding.
+            Its processes share a temporary compilation cache.
+        executor: a concurrent.futures.Executor to run on instead, e.g.
+            ``dask.distributed.Client(...).get_executor()``; every run is
+            submitted at once (workers > 1: at most that many in flight). A
+            worker process sets XLA_FLAGS for one thread before its first jax
+            work; this process keeps the store and writes every row.
+        store: path of the SQLite run store (resume: give the same path again),
+            a RunStore, or None (in memory).
+        progress: show a tqdm bar over runs.
+        stop: threading.Event; when set, the sweep ends after the runs in flight.
+        on_run: called with each finished run's record (dict).
+    Returns:
+        SweepResult.
+    Raises:
+        DataError when every planned run failed on its data (one failing run is a row).
+    """
+    if not isinstance(df, pd.DataFrame):
+        raise TypeError(f"`df` must be a pandas DataFrame, got {type(df).__name__}")
+    config = Config() if config is None else config
+    if not isinstance(config, Config):
+        raise TypeError(f"`config` must be an rnnkit.Config or None, got {type(config).__name__}")
+    metric = _check_metric(metric, config.task)
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ValueError(f"`workers` (={workers!r}) must be a whole number >= 1")
+    if executor is not None and not isinstance(executor, cf.Executor):
+        raise TypeError(f"`executor` (={executor!r}) must be a concurrent.futures.Executor, e.g. "
+                        "dask.distributed.Client(...).get_executor(), or None")
+    if stop is not None and not callable(getattr(stop, "is_set", None)):
+        raise TypeError(f"`stop` (={stop!r}) must be a threading.Event or None")
+    if on_run is not None and not callable(on_run):
+        raise TypeError(f"`on_run` (={on_run!r}) must be a function of one dict, or None")
+    configs = plan(config, space, strategy, n_samples, seeds)
+    records = run(df, configs, store=store, workers=workers, executor=executor,
+                  progress=progress, stop=stop, on_run=on_run)
+    if len(records) == len(configs) and all(r["status"] == "failed" for r in records):
+        raise DataError(f"every one of the {len(records)} runs failed on its data; the first: "
+                        f"{records[0]['message']}")
+    result = SweepResult(records, metric=metric, varied=list(space), config=config,
+                         planned=len(configs), df=df)
+    if any(r["status"] != "failed" for r in records):
+        result._require_metric()
+    return result
+
