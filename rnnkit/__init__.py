@@ -4,8 +4,8 @@ The parts, from the faces down (a part imports only parts below it):
 
     notebook, cli   the panel; the command line, its HTML report, the demo
     sweeps          plan, run, store; the JSON document
-    fitting         fit(), FitResult, save and load
-    evaluation      metrics and baselines
+    fitting         fit(), FitResult, save and load; backtest()
+    evaluation      metrics, baselines, significance tests
     inspection      gradient through time, spectra, saturation, loss surfaces
     training        optax loop, compiled epoch programs
     data            Config, checks, splits, windows, scaling; demo data
@@ -32,6 +32,8 @@ from .inspection import loss_surface as loss_surface
 from .fitting import FitResult as FitResult
 from .fitting import fit as fit
 from .fitting import load_fit as load_fit
+from .fitting import BacktestResult as BacktestResult
+from .fitting import backtest as backtest
 from .sweeps import FingerprintWarning as FingerprintWarning
 from .sweeps import RunStore as RunStore
 from .sweeps import SweepResult as SweepResult

@@ -14,6 +14,7 @@ Training and results:
     class_forecast(pred)                    class probabilities and class strips
     metrics_bar(metrics, column=)           one bar per model
     sweep_surface(table, x, y, metric=)     mean metric over two settings
+    backtest_folds(per_fold, column=)       one bar per fold and model
 
 Inside the network:
     gradient_flow(norms, sigma_max=)        ||dL/dh_k|| against step k, with its bound
@@ -31,6 +32,7 @@ Example:
     >>> fig = plots.training_curves(h)
     >>> fig.savefig("curves.png")  # doctest: +SKIP
 """
+from ._backtest import backtest_folds as backtest_folds
 from ._compare import metrics_bar as metrics_bar
 from ._compare import sweep_surface as sweep_surface
 from ._inside import gradient_flow as gradient_flow
@@ -43,6 +45,6 @@ from ._training import class_forecast as class_forecast
 from ._training import forecast as forecast
 from ._training import training_curves as training_curves
 
-__all__ = ["training_curves", "forecast", "class_forecast", "metrics_bar", "sweep_surface",
+__all__ = ["training_curves", "forecast", "class_forecast", "metrics_bar", "sweep_surface", "backtest_folds",
            "gradient_flow", "spectrum", "hidden_heatmap", "hidden_path", "loss_surface",
            "loss_slice"]
