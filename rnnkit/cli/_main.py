@@ -2,7 +2,8 @@
 
     rnnkit demo [--out DIR]
     rnnkit fit CONFIG.json --data FILE [--out DIR]
-    rnnkit sweep SPACE.json --data FILE [--store runs.db] [--workers N] [--out DIR]
+    rnnkit sweep SPACE.json --data FILE [--store runs.db] [--workers N] [--folds K] [--out DIR]
+    rnnkit backtest CONFIG.json --data FILE [--folds K] [--test-size N] [--window N] [--out DIR]
     rnnkit check-gradients CONFIG.json --data FILE
 
 Bad input ends with exit status 2 and one line on stderr that says what to fix.
@@ -152,7 +153,7 @@ def cmd_sweep(args) -> int:
     df = read_data(args.data, args.index_col, keep=config.time_column)
     out.mkdir(parents=True, exist_ok=True)
     result = sweep(df, config, space, workers=args.workers, store=args.store,
-                   progress=not args.no_progress, **options)
+                   progress=not args.no_progress, folds=args.folds, **options)
     _atomic_csv(result.table, out / "results.csv")
     result.export(out / "best-config.json")
     best = fit(df, result.best(), progress=False)
@@ -160,6 +161,28 @@ def cmd_sweep(args) -> int:
                  title=f"rnnkit sweep of {Path(args.data).name}")
     print(result.summary().to_string(float_format=lambda v: f"{v:.4g}"))
     print(f"wrote {out / 'results.csv'}, {out / 'best-config.json'} and {out / 'report.html'}")
+    return 0
+
+
+def cmd_backtest(args) -> int:
+    from ..sweeps._export import load_config
+    from ..fitting._backtest import backtest
+    from ._report import write_backtest_report
+
+    out = _out_folder(args.out)
+    config = load_config(args.config)
+    df = read_data(args.data, args.index_col, keep=config.time_column)
+    window = "expanding" if args.window is None else args.window
+    result = backtest(df, config, args.folds, window=window, test_size=args.test_size,
+                      progress=not args.no_progress)
+    out.mkdir(parents=True, exist_ok=True)
+    _atomic_csv(result.metrics.reset_index(), out / "results.csv")
+    _atomic_csv(result.errors, out / "errors.csv")
+    write_backtest_report(out / "report.html", result, title=f"rnnkit backtest of {Path(args.data).name}")
+    print(result.summary().to_string(float_format=lambda v: f"{v:.4g}"))
+    for v in result.comparison["verdict"]:
+        print(v)
+    print(f"wrote {out / 'results.csv'}, {out / 'errors.csv'} and {out / 'report.html'}")
     return 0
 
 
@@ -245,8 +268,23 @@ def build_parser() -> argparse.ArgumentParser:
                    "finished run; running again resumes")
     p.add_argument("--workers", type=int, default=1, metavar="N", help="worker processes")
     p.add_argument("--out", default="sweep-out", metavar="DIR", help="output folder (default sweep-out)")
+    p.add_argument("--folds", type=int, default=None, metavar="K",
+                   help="rank settings by the mean over K backtest folds (default: one split)")
     common(p)
     p.set_defaults(func=cmd_sweep)
+
+    p = sub.add_parser("backtest", help="rolling-origin backtest of one config against the baselines, "
+                       "with significance tests and a report")
+    p.add_argument("config", metavar="CONFIG.json", help="a config or exported experiment document")
+    p.add_argument("--folds", type=int, default=5, metavar="K", help="forecast origins (default 5)")
+    p.add_argument("--test-size", type=int, default=None, metavar="N",
+                   help="rows forecast per fold (default: the last half of the series in K blocks)")
+    p.add_argument("--window", type=int, default=None, metavar="N",
+                   help="train on the last N rows before each origin (default: every row before it)")
+    p.add_argument("--out", default="backtest-out", metavar="DIR",
+                   help="output folder (default backtest-out)")
+    common(p)
+    p.set_defaults(func=cmd_backtest)
 
     p = sub.add_parser("check-gradients", help="compare JAX gradients with hand-written BPTT "
                        "and finite differences on windows of your data")

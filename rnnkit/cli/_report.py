@@ -40,6 +40,8 @@ _CAPTIONS = {
                     "filter-normalised random directions (Li et al. 2018).",
     "loss_slice": "Validation loss along a random direction in the recurrent matrix V.",
     "sweep_surface": "Mean validation metric over two swept settings.",
+    "backtest_folds": "Test score of every model in every fold of the backtest; dashed lines are "
+                      "the means over folds.",
 }
 
 
@@ -109,4 +111,31 @@ def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report
                      f"<figcaption>{html.escape(_CAPTIONS.get(name, name))}</figcaption></figure>")
     parts.append("<h2>Configuration</h2><pre>" + html.escape(result.config.to_json()) + "</pre>")
     parts.append("</body></html>")
+    return write_text(path, "\n".join(parts))
+
+
+def write_backtest_report(path, result, *, title: str = "rnnkit backtest") -> Path:
+    """Write one HTML file with a backtest's folds, scores, verdicts and its figure, atomically."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    scheme = ", ".join(f"{k} {v}" for k, v in result.scheme.items())
+    fig = result.figure()
+    cmp = result.comparison
+    verdicts = "".join(f"<li>{html.escape(str(v))}</li>" for v in cmp["verdict"])
+    parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}"
+             f"</title><style>{_CSS}</style></head><body><h1>{html.escape(title)}</h1>",
+             f"<p>Written {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC. Folds: "
+             f"{html.escape(scheme)}; {result.compiles} programs compiled in "
+             f"{result.seconds:.1f} s.</p>",
+             "<h2>Verdicts</h2>",
+             f"<p>Paired tests over the forecasts of every fold ({html.escape(str(cmp['test'].iloc[0]))}"
+             f", two-sided):</p><ul>{verdicts}</ul>" if len(cmp) else "<p>No baseline to compare.</p>",
+             _table(cmp),
+             "<h2>Scores over folds</h2>", _table(result.summary()),
+             "<h2>Folds</h2>", _table(result.folds, index=False),
+             "<h2>Scores per fold</h2>", _table(result.metrics),
+             f"<h2>Figure</h2><figure><img alt='backtest_folds' src='data:image/png;base64,{_png(fig)}'>"
+             f"<figcaption>{html.escape(_CAPTIONS['backtest_folds'])}</figcaption></figure>",
+             "<h2>Configuration</h2><pre>" + html.escape(result.config.to_json()) + "</pre>",
+             "</body></html>"]
     return write_text(path, "\n".join(parts))

@@ -218,8 +218,10 @@ def _strata(df, config, codes):
 
 
 def plan_folds(df: pd.DataFrame, config: Config, folds: int, *, test_size: Optional[int] = None,
-               window: Union[str, int] = "expanding"):
+               window: Union[str, int] = "expanding", seed: Optional[int] = None):
     """The folds of a backtest and the Config each fold is fitted with.
+
+    Args as ``backtest``; ``seed`` (None: ``config.seed``) shuffles whole-sequence folds.
 
     Returns:
       (folds [Fold], config with ``split_column`` set to the new label column, column name, scheme dict).
@@ -234,6 +236,9 @@ def plan_folds(df: pd.DataFrame, config: Config, folds: int, *, test_size: Optio
                                   or window < 2):
         raise ValueError(f"`window` (={window!r}) must be 'expanding' or a whole number of rows >= 2 "
                          "(a rolling training window of that length)")
+    seed = config.seed if seed is None else _whole(seed, "seed", 0)
+    if test_size is not None:
+        test_size = _whole(test_size, "test_size")
     column = _column_name(df)
     cfg = config.replace(split_column=column)
     codes = None
@@ -247,10 +252,10 @@ def plan_folds(df: pd.DataFrame, config: Config, folds: int, *, test_size: Optio
                              "(`group_column`) every fold tests whole sequences: leave them out")
         if folds < 2:
             raise ValueError(f"`folds` (={folds}) must be >= 2 with whole-sequence folds")
-        out = group_folds(codes, folds, val_fraction=_val_fraction(config), seed=config.seed,
+        out = group_folds(codes, folds, val_fraction=_val_fraction(config), seed=seed,
                           strata=_strata(df, config, codes))
         scheme = {"folds": folds, "scheme": "sequences", "stratified": config.task == "classification",
-                  "seed": config.seed}
+                  "seed": seed}
         return out, cfg, column, scheme
     n = len(df)
     if test_size is None:
@@ -428,8 +433,8 @@ class BacktestResult:
 
 
 def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str, int] = "expanding",
-             test_size: Optional[int] = None, level: float = LEVEL, progress: bool = True,
-             shapes: Optional[dict] = None) -> BacktestResult:
+             test_size: Optional[int] = None, seed: Optional[int] = None, level: float = LEVEL,
+             progress: bool = True, shapes: Optional[dict] = None) -> BacktestResult:
     """Rolling-origin backtest of the network and every baseline, with significance tests.
 
     Args:
@@ -442,6 +447,7 @@ def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str
         or a whole number of rows (a rolling training window of that length).
       test_size: one series: rows forecast per fold; None splits the last half of the
         series into `folds` blocks.
+      seed: several sequences: shuffles the sequences into folds (None: ``config.seed``).
       level: significance level of the verdicts.
       progress: a line per fold.
       shapes: padding targets (``shape_plan``) to share programs with other runs; None plans
@@ -456,7 +462,8 @@ def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str
     """
     t0 = time.perf_counter()
     cfg = resolve_config(config)
-    fold_list, fold_cfg, column, scheme = plan_folds(df, cfg, folds, test_size=test_size, window=window)
+    fold_list, fold_cfg, column, scheme = plan_folds(df, cfg, folds, test_size=test_size, window=window,
+                                                           seed=seed)
     frames = [fold_frame(df, f, column) for f in fold_list]
     if shapes is None:
         prepared = []

@@ -43,13 +43,14 @@ def backtest_folds(per_fold: pd.DataFrame, *, column: str, highlight: str = "rnn
     fig, ax = base.figure_and_axes(ax, (max(6.0, 1.1 * n_f * max(n_m, 2) * 0.45 + 2.0),
                                         3.6 + 0.25 * len(lines)))
     width = 0.8 / n_m
-    others = colormaps["tab10"]
+    palette = colormaps["tab10"]
+    others = [palette(i) for i in (0, 2, 4, 9, 6, 8, 5, 7)]  # no orange: that is the network's
     k = 0
     for j, m in enumerate(models):
         if m == highlight:
             colour = base.ACCENT
         else:
-            colour = others((k + 1) % 10)
+            colour = others[k % len(others)]
             k += 1
         x = np.arange(n_f) + (j - (n_m - 1) / 2) * width
         ok = np.isfinite(values[:, j])

@@ -6,6 +6,7 @@ Layout (JSON, described by ``config.schema.json``, draft 2020-12)::
      "config":  {...every Config field...},
      "metric":  {"name": "val_rmse", "value": 0.41},
      "metrics": {"val_rmse": 0.41, "persistence_val_rmse": 0.55, ...},
+     "scoring": {"folds": 5, "scheme": "rolling origin", "window": "expanding", ...},
      "data":    {"fingerprint": "sha256:...", "rows": 8760, "columns": [...],
                  "start": "2023-01-02T00:00:00", "end": "..."},
      "software": {"rnnkit": "0.1.0", "jax": "0.10.2", ...},
@@ -215,7 +216,7 @@ def _number(v) -> Optional[float]:
     return v if math.isfinite(v) else None  # JSON has no NaN/inf
 
 
-def document(config: Config, *, metric=None, metrics=None, data=None, notes=None) -> dict:
+def document(config: Config, *, metric=None, metrics=None, data=None, notes=None, scoring=None) -> dict:
     """Build (and check) an experiment document.
 
     Args:
@@ -224,6 +225,9 @@ def document(config: Config, *, metric=None, metrics=None, data=None, notes=None
         metrics: ``{name: value}`` of every score.
         data: a DataFrame (its fingerprint is computed with `config`) or a ready data dict.
         notes: free text.
+        scoring: how the metric was measured: {"folds": 1, "scheme": "split", ...} or a
+            backtest's {"folds": K, "scheme": "rolling origin" | "sequences", "window",
+            "test_size", "seed"} (the metrics are then means over the folds).
     Returns:
         dict, valid against the schema.
     """
@@ -235,6 +239,8 @@ def document(config: Config, *, metric=None, metrics=None, data=None, notes=None
         doc["metric"] = {"name": str(name), "value": None if value is None else _number(value)}
     if metrics is not None:
         doc["metrics"] = {str(k): None if v is None else _number(v) for k, v in dict(metrics).items()}
+    if scoring is not None:
+        doc["scoring"] = dict(scoring)
     if data is not None:
         doc["data"] = data_block(data, config) if isinstance(data, pd.DataFrame) else dict(data)
     doc["software"] = software()

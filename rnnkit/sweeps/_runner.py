@@ -28,6 +28,7 @@ from ..data._config import Config
 from ..data._prepare import prepare
 from ..data._errors import DataError
 from ._export import fingerprint
+from ..fitting._backtest import fold_frame, plan_folds
 from ..fitting._fit import fit
 from ._store import open_store, run_key
 from ..training._train import shape_plan
@@ -206,37 +207,71 @@ def _data_key(config: Config) -> Config:
     return config.replace(**{f: getattr(Config, f) for f in TRAINING_FIELDS})
 
 
-def plan_shapes(df: pd.DataFrame, configs: Sequence[Config]):
+def plan_shapes(df: pd.DataFrame, configs: Sequence[Config], folds: Optional[dict] = None,
+                units: Optional[Sequence[tuple]] = None):
     """Common padded shapes for the runs, and the DataError message of runs that cannot be prepared.
 
+    Args:
+        df: the frame.
+        configs: the planned Configs.
+        folds: None, or the fold spec of a backtest sweep (``fold_spec``).
+        units: (config index, fold number or None) pairs to plan; None: every config, no fold.
     Returns:
-        (shapes, failed): shapes[i] a dict for ``train(shapes=)`` or None;
-        failed {i: message}.
+        (shapes, failed, frames): shapes[j] a dict for ``train(shapes=)`` or None;
+        failed {j: message}; frames[j] None or (fold frame, Config with its split column)
+        for unit j. All folds of all settings share one plan per family.
     """
-    prepared, failed = {}, {}
-    for i, c in enumerate(configs):
-        k = _data_key(c)
-        if k not in prepared:
+    units = [(i, None) for i in range(len(configs))] if units is None else list(units)
+    prepared, failed, frames, plans_of = {}, {}, [], {}
+    for j, (i, k) in enumerate(units):
+        c = configs[i]
+        dk = _data_key(c)
+        frame = None
+        if k is not None:
+            if dk not in plans_of:
+                try:
+                    fl, fcfg, column, _ = plan_folds(df, dk, folds["folds"], test_size=folds["test_size"],
+                                                     window=folds["window"], seed=folds["seed"])
+                    plans_of[dk] = (fl, column)
+                except DataError as e:
+                    plans_of[dk] = e
+            if isinstance(plans_of[dk], DataError):
+                failed[j] = str(plans_of[dk])
+                frames.append(None)
+                continue
+            fl, column = plans_of[dk]
+            frame = (fold_frame(df, fl[k - 1], column), c.replace(split_column=column))
+        frames.append(frame)
+        key = (dk, k)
+        if key not in prepared:
             try:
-                prepared[k] = prepare(df, c)
+                prepared[key] = prepare(df, c) if frame is None else prepare(frame[0], frame[1])
             except DataError as e:
-                prepared[k] = e
-        if isinstance(prepared[k], DataError):
-            failed[i] = str(prepared[k])
+                prepared[key] = DataError(f"fold {k}: {e}" if k is not None else str(e))
+        if isinstance(prepared[key], DataError):
+            failed[j] = str(prepared[key])
     # Runs can share a program only when they agree on everything but the window geometry.
     families: Dict[tuple, list] = {}
-    for k, p in prepared.items():
+    for key, p in prepared.items():
         if not isinstance(p, DataError):
-            families.setdefault((k.task, k.mode, k.dtype, p.n_inputs, p.n_outputs), []).append(k)
+            k = key[0]
+            families.setdefault((k.task, k.mode, k.dtype, p.n_inputs, p.n_outputs), []).append(key)
     plans = {}
     for members in families.values():
-        s = shape_plan([prepared[k] for k in members])
-        plans.update({k: s for k in members})
-    return [plans.get(_data_key(c)) for c in configs], failed
+        sp = shape_plan([prepared[key] for key in members])
+        plans.update({key: sp for key in members})
+    shapes = [plans.get((_data_key(configs[i]), k)) for i, k in units]
+    return shapes, failed, frames
 
 
-def _record(key, config, fp, outcome) -> dict:
-    rec = {"key": key, "config": config.to_dict(), "fingerprint": fp}
+def fold_spec(folds: int, test_size: Optional[int] = None, window="expanding", seed: int = 0) -> dict:
+    """How a backtest sweep makes its folds (part of every fold run's key and of the document)."""
+    return {"folds": int(folds), "test_size": None if test_size is None else int(test_size),
+            "window": window, "seed": int(seed)}
+
+
+def _record(key, config, fp, outcome, fold=None) -> dict:
+    rec = {"key": key, "config": config.to_dict(), "fingerprint": fp, "fold": fold}
     rec.update(outcome)
     rec["finished"] = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     return rec
@@ -258,8 +293,8 @@ def _fingerprints(df, configs) -> List[str]:
 
 def run(df: pd.DataFrame, configs: Sequence[Config], *, store=None, workers: int = 1,
         executor: Optional[cf.Executor] = None, progress: bool = True,
-        stop: Optional[threading.Event] = None, on_run: Optional[Callable[[dict], None]] = None
-        ) -> List[dict]:
+        stop: Optional[threading.Event] = None, on_run: Optional[Callable[[dict], None]] = None,
+        folds: Optional[dict] = None) -> List[dict]:
     """Run every Config not yet in `store`; commit each finished run before reporting it.
 
     Args:
@@ -274,30 +309,37 @@ def run(df: pd.DataFrame, configs: Sequence[Config], *, store=None, workers: int
         progress: a tqdm bar over runs.
         stop: a threading.Event; once set, no new run starts, runs in flight finish and are stored.
         on_run: called with each stored record (dict), in the calling thread.
+        folds: None (each Config fitted on its own split), or a ``fold_spec``: each Config
+            is backtested, one stored run per fold (record "fold": {"fold": k, ...}).
     Returns:
-        the stored records of `configs`, in plan order (runs never started are absent).
+        the stored records of `configs`, in plan order, folds in order (runs never started
+        are absent).
     """
     store, owned = open_store(store)
     try:
-        return _run(df, configs, store, workers, executor, progress, stop, on_run)
+        return _run(df, configs, store, workers, executor, progress, stop, on_run, folds)
     finally:
         if owned:
             store.close()
 
 
-def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[dict]:
+def _run(df, configs, store, workers, executor, progress, stop, on_run, folds=None) -> List[dict]:
     fps = _fingerprints(df, configs)
-    keys = [run_key(c, fp) for c, fp in zip(configs, fps)]
+    units = [(i, k) for i in range(len(configs))
+             for k in ([None] if folds is None else range(1, folds["folds"] + 1))]
+    specs = [None if k is None else {"fold": k, **folds} for _, k in units]
+    keys = [run_key(configs[i], fps[i], spec) for (i, _), spec in zip(units, specs)]
     done = store.keys()
     first = {}  # key -> first plan position: a Config listed twice runs once
-    for i, k in enumerate(keys):
-        first.setdefault(k, i)
-    todo = [i for k, i in first.items() if k not in done]
+    for u, k in enumerate(keys):
+        first.setdefault(k, u)
+    todo = [u for k, u in first.items() if k not in done]
     bar = tqdm(total=len(first), initial=len(first) - len(todo), desc="sweep", unit="run",
                disable=not progress)
 
-    def finish(i, outcome):
-        rec = _record(keys[i], configs[i], fps[i], outcome)
+    def finish(u, outcome):
+        i = units[u][0]
+        rec = _record(keys[u], configs[i], fps[i], outcome, specs[u])
         store.put(rec)  # committed before anything else learns of the run
         bar.update(1)
         bar.set_postfix(status=rec["status"][:20])
@@ -306,30 +348,35 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
 
     try:
         if todo:
-            shapes, failed = plan_shapes(df, [configs[i] for i in todo])
-            tasks = []
-            for j, i in enumerate(todo):
+            shapes, failed, frames = plan_shapes(df, configs, folds, [units[u] for u in todo])
+            tasks, jobs = [], {}
+            for j, u in enumerate(todo):
                 if j in failed:
-                    finish(i, {"status": "failed", "epochs": 0, "seconds": 0.0, "compiles": 0,
+                    finish(u, {"status": "failed", "epochs": 0, "seconds": 0.0, "compiles": 0,
                                "metrics": {}, "message": failed[j]})
                 else:
-                    tasks.append((i, shapes[j]))
+                    tasks.append((u, shapes[j]))
+                    i = units[u][0]
+                    jobs[u] = (df, configs[i]) if frames[j] is None else frames[j]
             x64 = bool(jax.config.jax_enable_x64)
             if executor is None and workers == 1:
-                for i, s in tasks:
+                for u, s in tasks:
                     if stop is not None and stop.is_set():
                         break
-                    finish(i, run_one(df, configs[i], s))
+                    finish(u, run_one(*jobs[u], s))
             else:
-                _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish)
+                _run_parallel(jobs, [configs[i] for i, _ in units], tasks, x64, workers, executor,
+                              stop, finish)
     finally:
         bar.close()
     got = store.get(keys)
     return [got[k] for k in dict.fromkeys(keys) if k in got]
 
 
-def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> None:
-    """Submit runs to a pool (ours) or the caller's executor; store each result as it comes."""
+def _run_parallel(jobs, configs, tasks, x64, workers, executor, stop, finish) -> None:
+    """Submit runs to a pool (ours) or the caller's executor; store each result as it comes.
+
+    jobs: unit -> (frame, Config) to fit; configs: unit -> Config (for the program groups)."""
     own = executor is None
     pool = process_pool(workers) if own else executor
     cache_env, cache_dir = _shared_compile_cache() if own else ({}, None)
@@ -342,7 +389,8 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
             while pending and len(running) < limit and not (stop is not None and stop.is_set()):
                 i, s = pending.pop(0)
                 with _spawn_env(cache_env) if own else contextlib.nullcontext():
-                    running[pool.submit(remote_run, df, configs[i], s, x64, os.getpid())] = i
+                    frame, config = jobs[i]
+                    running[pool.submit(remote_run, frame, config, s, x64, os.getpid())] = i
             if not running:
                 break
             finished, _ = cf.wait(running, timeout=0.5, return_when=cf.FIRST_COMPLETED)

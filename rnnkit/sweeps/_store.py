@@ -1,7 +1,8 @@
 """The run store: one embedded SQLite file, one committed row per finished run.
 
-A run is keyed by ``run_key(config, fingerprint)``: sha256 of every Config
-field and the data fingerprint. A row is committed (WAL journal, full sync)
+A run is keyed by ``run_key(config, fingerprint, fold)``: sha256 of every
+Config field, the data fingerprint and, for a backtest sweep, the fold (its
+number and how the folds were made), so a killed sweep resumes fold by fold. A row is committed (WAL journal, full sync)
 before the sweep starts the next run, so a killed sweep loses at most the run
 in flight, and a second sweep over the same store runs only the missing keys.
 Only the process that opened the store writes to it; parallel workers send
@@ -23,10 +24,10 @@ import pandas as pd
 
 from ..data._config import Config
 
-LAYOUT = 1  # bump when the table below changes
+LAYOUT = 2  # bump when the table below changes (2: the fold column; layout-1 files gain it on opening)
 _TABLE = """
 CREATE TABLE IF NOT EXISTS runs (
-    key TEXT PRIMARY KEY,       -- run_key(config, fingerprint)
+    key TEXT PRIMARY KEY,       -- run_key(config, fingerprint, fold)
     config TEXT NOT NULL,       -- JSON object of every Config field
     fingerprint TEXT NOT NULL,  -- "sha256:..." of the data the run used
     status TEXT NOT NULL,       -- "ok", "diverged at epoch N", "stopped early at epoch N", "failed"
@@ -35,16 +36,23 @@ CREATE TABLE IF NOT EXISTS runs (
     compiles INTEGER NOT NULL,  -- training programs compiled for this run
     metrics TEXT NOT NULL,      -- JSON object: column name -> number or null
     message TEXT NOT NULL,      -- why a run failed ("" otherwise)
-    finished TEXT NOT NULL      -- ISO-8601 UTC
+    finished TEXT NOT NULL,     -- ISO-8601 UTC
+    fold TEXT NOT NULL DEFAULT ''  -- JSON {"fold": k, "folds": K, "scheme": ...} of a backtest run; '' otherwise
 )"""
 FIELDS = ("key", "config", "fingerprint", "status", "epochs", "seconds", "compiles",
-          "metrics", "message", "finished")
+          "metrics", "message", "finished", "fold")
 
 
-def run_key(config: Config, fingerprint: str) -> str:
-    """sha256 hex of the run's full config and data fingerprint (canonical JSON)."""
-    blob = json.dumps({"config": config.to_dict(), "data": fingerprint},
-                      sort_keys=True, separators=(",", ":"), allow_nan=False)
+def run_key(config: Config, fingerprint: str, fold: Optional[dict] = None) -> str:
+    """sha256 hex of the run's full config, data fingerprint and fold (canonical JSON).
+
+    ``fold`` None (a run on the config's own split) gives the key the store has
+    always used, so stores of earlier sweeps resume.
+    """
+    what = {"config": config.to_dict(), "data": fingerprint}
+    if fold is not None:
+        what["fold"] = fold
+    blob = json.dumps(what, sort_keys=True, separators=(",", ":"), allow_nan=False)
     return hashlib.sha256(blob.encode("utf-8")).hexdigest()
 
 
@@ -94,6 +102,9 @@ class RunStore:
                 row = self._db.execute("SELECT version FROM layout").fetchone()
                 if row is None:
                     self._db.execute("INSERT INTO layout VALUES (?)", (LAYOUT,))
+                elif row[0] == 1:  # a store of plain runs: add the fold column, keep every row
+                    self._db.execute("ALTER TABLE runs ADD COLUMN fold TEXT NOT NULL DEFAULT ''")
+                    self._db.execute("UPDATE layout SET version = ?", (LAYOUT,))
                 elif row[0] != LAYOUT:
                     raise ValueError(f"`store` {str(self.path)!r} has layout {row[0]}, this rnnkit "
                                      f"writes layout {LAYOUT}; use a new file for this sweep")
@@ -105,7 +116,7 @@ class RunStore:
     # --- writing ---
     def put(self, record: dict) -> None:
         """Commit one finished run (replacing a row with the same key)."""
-        missing = [f for f in FIELDS if f not in record and f != "finished"]
+        missing = [f for f in FIELDS if f not in record and f not in ("finished", "fold")]
         if missing:
             raise ValueError(f"run record lacks {missing}; it needs {list(FIELDS)}")
         row = (record["key"], json.dumps(record["config"], allow_nan=False), record["fingerprint"],
@@ -113,7 +124,8 @@ class RunStore:
                int(record["compiles"]),
                json.dumps({k: _json_number(v) for k, v in record["metrics"].items()}, allow_nan=False),
                str(record.get("message") or ""),
-               record.get("finished") or _now())
+               record.get("finished") or _now(),
+               "" if record.get("fold") is None else json.dumps(record["fold"], sort_keys=True))
         with self._lock, self._db:  # the with-block commits before returning
             self._db.execute(f"INSERT OR REPLACE INTO runs ({', '.join(FIELDS)}) "
                              f"VALUES ({', '.join('?' * len(FIELDS))})", row)
@@ -149,6 +161,8 @@ class RunStore:
         for r in self.records():
             row = dict(r["config"])
             row.update({k: r[k] for k in ("status", "epochs", "seconds", "compiles", "message")})
+            if r["fold"] is not None:
+                row["fold"] = r["fold"]["fold"]
             row.update({k: (math.nan if v is None else v) for k, v in r["metrics"].items()})
             row["key"] = r["key"]
             rows.append(row)
@@ -159,6 +173,7 @@ class RunStore:
         r = dict(zip(FIELDS, row))
         r["config"] = json.loads(r["config"])
         r["metrics"] = json.loads(r["metrics"])
+        r["fold"] = json.loads(r["fold"]) if r["fold"] else None
         return r
 
     def __len__(self) -> int:

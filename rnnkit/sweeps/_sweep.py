@@ -23,7 +23,7 @@ from ..data._config import Config
 from ..data._errors import DataError
 from ._export import document, write_document
 from ._plan import plan
-from ._runner import run
+from ._runner import fold_spec, run
 
 METRICS = {"regression": ("mae", "rmse", "mase", "r2"),
            "classification": ("accuracy", "balanced_accuracy", "log_loss")}
@@ -78,8 +78,9 @@ class SweepResult:
     """
 
     def __init__(self, records: Sequence[dict], *, metric: str, varied: Sequence[str], config: Config,
-                 planned: int, df: Optional[pd.DataFrame] = None):
+                 planned: int, df: Optional[pd.DataFrame] = None, folds: Optional[dict] = None):
         self.metric, self.varied, self.config = metric, list(varied), config
+        self.folds = None if folds is None else dict(folds)
         self.missing = planned - len(records)
         self._df = df
         self._configs = {r["key"]: Config.from_dict(r["config"]) for r in records}
@@ -89,6 +90,8 @@ class SweepResult:
             row = {f: _hashable(getattr(c, f)) for f in self.varied}
             row.update(seed=c.seed, status=r["status"], epochs=r["epochs"], seconds=r["seconds"],
                        compiles=r["compiles"])
+            if self.folds is not None:
+                row["fold"] = (r.get("fold") or {}).get("fold")
             for k, v in r["metrics"].items():
                 metric_cols.setdefault(k, None)
                 row[k] = np.nan if v is None else v
@@ -96,10 +99,29 @@ class SweepResult:
             rows.append(row)
         own = [k for k in metric_cols if k.startswith(("val_", "test_"))]
         others = [k for k in metric_cols if k not in own]
-        cols = self.varied + list(RUN_COLUMNS) + own + others + ["message", "key"]
+        fold_col = ["fold"] if self.folds is not None else []
+        cols = self.varied + ["seed"] + fold_col + list(RUN_COLUMNS[1:]) + own + others + ["message", "key"]
         self.table = pd.DataFrame(rows, columns=cols)
         for k in metric_cols:
             self.table[k] = self.table[k].astype(np.float64)
+        self._metric_cols = list(metric_cols)
+
+    def _scored(self) -> pd.DataFrame:
+        """One row per (setting, seed): the table itself, or with folds the mean over folds of
+        every score (NaN when a fold has none), the worst status and the first fold's key."""
+        if self.folds is None:
+            return self.table
+        t = self.table
+        keys = self.varied + ["seed"]
+        g = t.groupby(keys, dropna=False, sort=False)
+        out = g[self._metric_cols].agg(lambda v: v.mean(skipna=False))
+        out["status"] = g["status"].agg(_worst_status)
+        out["folds"] = g.size()
+        for c in ("epochs", "seconds", "compiles"):
+            out[c] = g[c].sum()
+        out["message"] = g["message"].agg(lambda m: next((x for x in m if x), ""))
+        out["key"] = g["key"].first()
+        return out.reset_index()
 
     def _require_metric(self):
         if self.metric not in self.table.columns:
@@ -110,6 +132,9 @@ class SweepResult:
     def summary(self) -> pd.DataFrame:
         """One row per setting: mean and spread over seeds, ranked by the metric.
 
+        With folds, each seed's score is first its mean over the folds (a setting with a
+        fold that failed or diverged has no score and ranks last).
+
         Returns:
             DataFrame with the varied fields, ``rank``, ``runs``, the metric's
             mean (named as the metric), ``<metric>_std`` (sample std over
@@ -119,7 +144,7 @@ class SweepResult:
             for accuracy, balanced_accuracy and r2); settings without a score last.
         """
         self._require_metric()
-        t, m = self.table, self.metric
+        t, m = self._scored(), self.metric
         g = t.groupby(self.varied, dropna=False, sort=False)
         out = pd.DataFrame({"runs": g.size(), m: g[m].mean(), f"{m}_std": g[m].std(ddof=1),
                             "seed_spread": g[m].max() - g[m].min()})
@@ -136,12 +161,12 @@ class SweepResult:
 
     def best_run(self) -> pd.Series:
         """The table row of the winner: the best setting's run nearest its mean over seeds
-        (a typical seed, not the luckiest one)."""
+        (a typical seed, not the luckiest one); with folds, that seed's means over the folds."""
         top = self.summary().iloc[0]
         if not np.isfinite(top[self.metric]):
             raise ValueError(f"no run has a finite {self.metric!r}; every run failed or diverged "
                              "(see the table's status and message columns)")
-        t = self.table
+        t = self._scored()
         same = np.ones(len(t), bool)
         for f in self.varied:
             same &= np.array([_same(v, top[f]) for v in t[f]], dtype=bool)
@@ -159,8 +184,17 @@ class SweepResult:
                    or re.fullmatch(r".+_(val|test)_.+", k)}
         data = self._df if self._df is not None else None
         doc = document(self._configs[row["key"]], metric=(self.metric, row[self.metric]),
-                       metrics=metrics, data=data, notes=notes)
+                       metrics=metrics, data=data, notes=notes, scoring=self.scoring)
         return write_document(doc, path)
+
+    @property
+    def scoring(self) -> dict:
+        """How each setting was scored (the document's "scoring"): one split, or the mean over
+        the folds of a backtest (number, scheme, window, test_size, seed)."""
+        if self.folds is None:
+            return {"folds": 1, "scheme": "split", "split": list(self.config.split)}
+        scheme = "sequences" if self.config.group_column is not None else "rolling origin"
+        return {**self.folds, "scheme": scheme}
 
     def __repr__(self) -> str:
         n = len(self.table)
@@ -170,11 +204,21 @@ class SweepResult:
         return f"SweepResult({n} runs: {text}{more}; varied {self.varied}; metric {self.metric!r})"
 
 
+def _worst_status(statuses) -> str:
+    """The status that speaks for a setting's folds: failed, then diverged, then the first."""
+    for prefix in ("failed", "diverged", "stopped by user"):
+        hit = [s for s in statuses if str(s).startswith(prefix)]
+        if hit:
+            return hit[0]
+    return statuses.iloc[0]
+
+
 def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: str = "grid",
           n_samples: Optional[int] = None, seeds: Union[int, Sequence[int]] = 1,
           metric: Optional[str] = None, workers: int = 1, executor: Optional[cf.Executor] = None,
           store=None, progress: bool = True, stop=None,
-          on_run: Optional[Callable[[dict], None]] = None) -> SweepResult:
+          on_run: Optional[Callable[[dict], None]] = None, folds: Optional[int] = None,
+          test_size: Optional[int] = None, fold_window: Union[str, int] = "expanding") -> SweepResult:
     """Train every setting of a search space, store each run as it finishes, rank them.
 
     Args:
@@ -201,6 +245,14 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         progress: show a tqdm bar over runs.
         stop: threading.Event; when set, the sweep ends after the runs in flight.
         on_run: called with each finished run's record (dict).
+        folds: None scores each run on the config's own split; K >= 1 backtests every
+            setting and seed (``rnnkit.backtest``: rolling origins, or whole-sequence folds
+            with ``group_column``; folds shuffled by `config.seed`) and ranks settings by
+            the mean over folds. The store keeps one row per (setting, seed, fold), so a
+            killed sweep resumes fold by fold; all folds share compiled programs.
+        test_size, fold_window: with folds, one series: rows forecast per fold (None: the
+            last half of the series in K blocks) and "expanding" or a rolling training
+            window of that many rows (``backtest``'s `test_size` and `window`).
     Returns:
         SweepResult.
     Raises:
@@ -221,14 +273,32 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         raise TypeError(f"`stop` (={stop!r}) must be a threading.Event or None")
     if on_run is not None and not callable(on_run):
         raise TypeError(f"`on_run` (={on_run!r}) must be a function of one dict, or None")
+    spec = None
+    if folds is not None:
+        if isinstance(folds, bool) or not isinstance(folds, int) or folds < 1:
+            raise ValueError(f"`folds` (={folds!r}) must be a whole number >= 1 or None (one split)")
+        if test_size is not None and (isinstance(test_size, bool) or not isinstance(test_size, int)
+                                      or test_size < 1):
+            raise ValueError(f"`test_size` (={test_size!r}) must be a whole number of rows >= 1 or None")
+        if fold_window != "expanding" and (isinstance(fold_window, bool) or not isinstance(fold_window, int)
+                                           or fold_window < 2):
+            raise ValueError(f"`fold_window` (={fold_window!r}) must be 'expanding' or a whole number "
+                             "of rows >= 2")
+        if config.split_column is not None:
+            raise ValueError(f"`split_column` (={config.split_column!r}) fixes one split; with `folds` "
+                             "the folds are the split: set `split_column` to None")
+        spec = fold_spec(folds, test_size, fold_window, config.seed)
+    elif test_size is not None or fold_window != "expanding":
+        raise ValueError("`test_size` and `fold_window` shape the folds of a backtest sweep; give `folds` too")
     configs = plan(config, space, strategy, n_samples, seeds)
     records = run(df, configs, store=store, workers=workers, executor=executor,
-                  progress=progress, stop=stop, on_run=on_run)
-    if len(records) == len(configs) and all(r["status"] == "failed" for r in records):
+                  progress=progress, stop=stop, on_run=on_run, folds=spec)
+    planned = len(configs) * (1 if spec is None else spec["folds"])
+    if len(records) == planned and all(r["status"] == "failed" for r in records):
         raise DataError(f"every one of the {len(records)} runs failed on its data; the first: "
                         f"{records[0]['message']}")
     result = SweepResult(records, metric=metric, varied=list(space), config=config,
-                         planned=len(configs), df=df)
+                         planned=planned, df=df, folds=spec)
     if any(r["status"] != "failed" for r in records):
         result._require_metric()
     return result
