@@ -180,3 +180,19 @@ def test_whole_sequence_folds_on_gunpoint_with_mcnemar():
         maj = e[(e.model == "majority") & (e.fold == k)]
         np.testing.assert_allclose(bt.metrics.loc[(k, "majority"), "test_accuracy"],
                                    maj["correct"].mean(), **METRIC)
+
+
+def test_folds_on_an_executor_equal_the_folds_in_turn():
+    import concurrent.futures as cf
+
+    df = _airline()
+    cfg = rnnkit.Config(target="passengers", window=12, dtype="float64", **TINY)
+    here = rnnkit.backtest(df, cfg, folds=4, test_size=12, progress=False)
+    with cf.ThreadPoolExecutor(2) as pool:
+        there = rnnkit.backtest(df, cfg, folds=4, test_size=12, progress=False, executor=pool)
+    # the same programs, data and seeds: the same numbers
+    pd.testing.assert_frame_equal(here.metrics, there.metrics)
+    pd.testing.assert_frame_equal(here.comparison, there.comparison)
+    assert there.fits == [] and len(here.fits) == 4
+    with pytest.raises(TypeError, match="`executor`"):
+        rnnkit.backtest(df, cfg, folds=2, executor="two")

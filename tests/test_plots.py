@@ -86,6 +86,8 @@ CALLS = {
     "sweep_surface": lambda ax=None: plots.sweep_surface(_sweep_table(), "window", "hidden", ax=ax),
     "spectrum": lambda ax=None: plots.spectrum([1.3, 0.9, 0.2], ax=ax),
     "metrics_bar": lambda ax=None: plots.metrics_bar(_metrics(), column="test_rmse", ax=ax),
+    "backtest_folds": lambda ax=None: plots.backtest_folds(
+        pd.DataFrame({"rnn": [1.0, 2.0], "persistence": [1.5, 1.2]}, index=[1, 2]), column="test_rmse", ax=ax),
 }
 
 

@@ -20,10 +20,12 @@ McNemar on correct / incorrect (classification), over all folds together.
 """
 from __future__ import annotations
 
+import concurrent.futures as cf
 import time
 from dataclasses import dataclass
 from typing import List, Optional, Sequence, Union
 
+import jax
 import numpy as np
 import pandas as pd
 
@@ -378,8 +380,9 @@ class BacktestResult:
       comparison: DataFrame indexed by baseline: mean loss difference (network minus
         baseline), the test (Diebold-Mariano/HLN or McNemar), statistic, p-value, verdict.
       scheme: dict, how the folds were made (folds, scheme, window, test_size or seed).
-      fits: the FitResult of every fold.
-      compiles: training programs compiled over all folds; seconds: wall time.
+      fits: the FitResult of every fold (empty when the folds ran on an executor).
+      compiles: programs compiled over all folds (this process; with an executor the folds'
+        training programs); seconds: wall time.
     """
 
     def __init__(self, *, folds, metrics, errors, comparison, scheme, fits, compiles, seconds, config):
@@ -434,7 +437,8 @@ class BacktestResult:
 
 def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str, int] = "expanding",
              test_size: Optional[int] = None, seed: Optional[int] = None, level: float = LEVEL,
-             progress: bool = True, shapes: Optional[dict] = None) -> BacktestResult:
+             progress: bool = True, shapes: Optional[dict] = None,
+             executor: Optional[cf.Executor] = None) -> BacktestResult:
     """Rolling-origin backtest of the network and every baseline, with significance tests.
 
     Args:
@@ -452,6 +456,10 @@ def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str
       progress: a line per fold.
       shapes: padding targets (``shape_plan``) to share programs with other runs; None plans
         them over the folds.
+      executor: run the folds in parallel on any concurrent.futures.Executor (a process pool,
+        ``dask.distributed.Client(...).get_executor()``); None fits them one after another
+        here. With an executor ``fits`` is empty (fits stay in the workers) and ``compiles``
+        sums the folds' training programs.
 
     Returns:
       BacktestResult.
@@ -462,40 +470,71 @@ def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str
     """
     t0 = time.perf_counter()
     cfg = resolve_config(config)
+    if executor is not None and not isinstance(executor, cf.Executor):
+        raise TypeError(f"`executor` (={executor!r}) must be a concurrent.futures.Executor, e.g. "
+                        "dask.distributed.Client(...).get_executor(), or None")
     fold_list, fold_cfg, column, scheme = plan_folds(df, cfg, folds, test_size=test_size, window=window,
                                                            seed=seed)
     frames = [fold_frame(df, f, column) for f in fold_list]
+    prepared = [_prepare_fold(frame, fold_cfg, f) for f, frame in zip(fold_list, frames)]
     if shapes is None:
-        prepared = []
-        for f, frame in zip(fold_list, frames):
-            prepared.append(_prepare_fold(frame, fold_cfg, f))
         shapes = shape_plan(prepared)
     c0 = compile_count()
-    fits, errors, metrics, rows = [], [], [], []
-    for f, frame in zip(fold_list, frames):
-        res = _fit_fold(frame, fold_cfg, f, shapes, progress)
-        offset = np.flatnonzero(f.part != None)  # noqa: E711
-        e = fold_errors(res, f, offset)
-        fits.append(res)
-        errors.append(e)
-        metrics.append(res.metrics.assign(fold=f.fold).set_index("fold", append=True)
-                       .reorder_levels(["fold", "model"]))
-        p = res.prepared
-        t = p.target_times("test")
-        rows.append({"fold": f.fold, "origin": t.min() if t.size else None, "end": t.max() if t.size else None,
-                     "train_rows": p.counts["rows_train"], "val_rows": p.counts["rows_val"],
-                     "test_targets": int(len(p.starts["test"])), "status": res.status,
-                     "epochs": int(len(res.history)), "compiles": res.compiles, "seconds": res.seconds})
-        if progress:
-            print(f"fold {f.fold}/{len(fold_list)}: {res.status}, "
-                  f"{len(p.starts['test'])} test windows, {res.seconds:.1f} s")
-    errors = pd.concat(errors, ignore_index=True)
+    outcomes, fits = [], []
+    if executor is None:
+        for f, frame in zip(fold_list, frames):
+            res = _fit_fold(frame, fold_cfg, f, shapes)
+            fits.append(res)
+            outcomes.append(fold_outcome(res, f))
+            if progress:
+                _say(outcomes[-1], len(fold_list))
+        compiles = compile_count() - c0
+    else:
+        x64 = bool(jax.config.jax_enable_x64)
+        futures = [executor.submit(remote_fold, frame, fold_cfg, f, shapes, x64)
+                   for f, frame in zip(fold_list, frames)]
+        for fut in futures:  # in fold order; a fold's DataError is raised here, naming the fold
+            outcomes.append(fut.result())
+            if progress:
+                _say(outcomes[-1], len(fold_list))
+        compiles = sum(o["row"]["compiles"] for o in outcomes)
+    errors = pd.concat([o["errors"] for o in outcomes], ignore_index=True)
     regression = cfg.task == "regression"
-    comparison = compare(errors, regression, dm_horizon(fits[0].prepared), level)
-    return BacktestResult(folds=pd.DataFrame(rows), metrics=pd.concat(metrics), errors=errors,
-                          comparison=comparison, scheme=scheme, fits=fits,
-                          compiles=compile_count() - c0, seconds=time.perf_counter() - t0,
-                          config=fits[0].config.replace(split_column=None))
+    comparison = compare(errors, regression, dm_horizon(prepared[0]), level)
+    return BacktestResult(folds=pd.DataFrame([o["row"] for o in outcomes]),
+                          metrics=pd.concat([o["metrics"] for o in outcomes]), errors=errors,
+                          comparison=comparison, scheme=scheme, fits=fits, compiles=compiles,
+                          seconds=time.perf_counter() - t0,
+                          config=prepared[0].config.replace(split_column=None))
+
+
+def fold_outcome(res, f: Fold) -> dict:
+    """What a backtest keeps of one fold's fit: metrics (indexed by fold, model), errors, the
+    fold's row of ``BacktestResult.folds`` (all plain frames and numbers, to send between processes)."""
+    offset = np.flatnonzero(f.part != None)  # noqa: E711: caller-frame position of each fold row
+    p = res.prepared
+    t = p.target_times("test")
+    row = {"fold": f.fold, "origin": t.min() if t.size else None, "end": t.max() if t.size else None,
+           "train_rows": p.counts["rows_train"], "val_rows": p.counts["rows_val"],
+           "test_targets": int(len(p.starts["test"])), "status": res.status,
+           "epochs": int(len(res.history)), "compiles": res.compiles, "seconds": res.seconds}
+    metrics = res.metrics.assign(fold=f.fold).set_index("fold", append=True).reorder_levels(["fold", "model"])
+    return {"metrics": metrics, "errors": fold_errors(res, f, offset), "row": row}
+
+
+def remote_fold(frame: pd.DataFrame, config: Config, f: Fold, shapes: dict, x64: Optional[bool]) -> dict:
+    """One fold as a task for an Executor (threads, processes, Dask): fit, then ``fold_outcome``.
+
+    ``x64`` is the caller's jax x64 mode, so a worker computes as the caller would.
+    """
+    if x64 is not None and bool(jax.config.jax_enable_x64) != x64:
+        jax.config.update("jax_enable_x64", x64)
+    return fold_outcome(_fit_fold(frame, config, f, shapes), f)
+
+
+def _say(outcome, total):
+    r = outcome["row"]
+    print(f"fold {r['fold']}/{total}: {r['status']}, {r['test_targets']} test windows, {r['seconds']:.1f} s")
 
 
 def dm_horizon(prepared) -> int:
@@ -520,7 +559,7 @@ def _prepare_fold(frame, config, f):
         raise DataError(f"{_where(f)}: {e}") from None
 
 
-def _fit_fold(frame, config, f, shapes, progress):
+def _fit_fold(frame, config, f, shapes):
     try:
         return fit(frame, config, progress=False, shapes=shapes)
     except DataError as e:
