@@ -76,7 +76,8 @@ def series_folds(n: int, folds: int, *, test_size: int, lookback: int, val_fract
     first test window; 0 when test windows read inputs from before their part).
     Before that lie its training rows: every row from the start ("expanding")
     or the last ``window`` rows (a rolling window), the last ``val_fraction``
-    of them (at least one row) for validation.
+    of them for validation (at least ``lookback`` + 1 rows, what one window needs,
+    while one training row is left).
     """
     n, folds, test_size = _whole(n, "n"), _whole(folds, "folds"), _whole(test_size, "test_size")
     lookback = _whole(lookback, "lookback", 0)
@@ -96,7 +97,8 @@ def series_folds(n: int, folds: int, *, test_size: int, lookback: int, val_fract
         test_lo = origin - lookback
         lo = 0 if window == "expanding" else max(0, test_lo - int(window))
         m = test_lo - lo
-        v = min(max(1, int(round(m * val_fraction))), m - 1)
+        # at least the rows one validation window needs (as many as a test part's lead-in, plus one)
+        v = min(max(lookback + 1, int(round(m * val_fraction))), m - 1)
         part = np.full(n, None, dtype=object)
         part[lo:test_lo - v] = "train"
         part[test_lo - v:test_lo] = "val"
