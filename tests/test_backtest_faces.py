@@ -62,3 +62,22 @@ def test_backtest_folds_figure():
         plots.backtest_folds(pd.DataFrame(), column="test_rmse")
     with pytest.raises(TypeError, match="column"):
         plots.backtest_folds(per_fold, column=3)
+
+
+def test_backtest_view_shows_verdicts_and_bars():
+    from rnnkit.notebook import backtest_view
+
+    import rnnkit
+
+    d = nile.load_pandas().data  # statsmodels' nile
+    df = pd.DataFrame({"volume": d["volume"].to_numpy()})
+    bt = rnnkit.backtest(df, rnnkit.Config(target="volume", window=5, hidden=3, epochs=2, patience=None,
+                                           dtype="float64"), folds=3, test_size=10, progress=False)
+    box = backtest_view(bt)
+    for sentence in bt.comparison["verdict"]:
+        assert sentence in box.verdicts.value
+    assert bytes(box.figure.value[:4]) == b"\x89PNG"
+    assert "rnnkit-fig-backtest" in box.figure._dom_classes
+    assert "persistence" in box.table.value
+    with pytest.raises(TypeError, match="BacktestResult"):
+        backtest_view(bt.metrics)

@@ -5,3 +5,4 @@ evaluation, data, plots), never the other way round.
 """
 from ._panel import Panel as Panel
 from ._panel import panel as panel
+from ._backtest_view import backtest_view as backtest_view
