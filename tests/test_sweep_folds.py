@@ -1,4 +1,5 @@
 """Sweeps ranked by backtest: one stored run per (setting, seed, fold), resume by fold, the document."""
+import concurrent.futures as cf
 import json
 import sqlite3
 import threading
@@ -68,6 +69,12 @@ def test_folds_share_programs_across_settings_and_folds():
     # compiled by the first run (none if another test in this process made it already)
     assert len(res.table) == 12
     assert res.table["compiles"].sum() <= 1 and (res.table["compiles"].iloc[1:] == 0).all()
+    # the same fold runs handed to an Executor (the parallel path) give the same numbers
+    with cf.ThreadPoolExecutor(2) as pool:
+        there = rnnkit.sweep(df, rnnkit.Config(**BASE, dtype="float64").replace(hidden=7),
+                             {"window": [3, 5, 8]}, folds=4, test_size=8, progress=False, executor=pool)
+    cols = ["window", "fold", "val_rmse", "test_rmse", "persistence_test_rmse"]
+    pd.testing.assert_frame_equal(res.table[cols], there.table[cols])
 
 
 def test_layout_1_store_gains_the_fold_column(tmp_path):
@@ -98,3 +105,5 @@ def test_folds_arguments_are_checked():
         rnnkit.sweep(df, cfg, {"hidden": [2]}, test_size=5, progress=False)
     with pytest.raises(ValueError, match="`fold_window`"):
         rnnkit.sweep(df, cfg, {"hidden": [2]}, folds=2, fold_window="rolling", progress=False)
+    with pytest.raises(rnnkit.DataError, match="fewer `folds`"):  # every fold run failed on its data
+        rnnkit.sweep(df, cfg, {"hidden": [2, 3]}, folds=40, test_size=10, progress=False)
