@@ -107,3 +107,16 @@ def test_folds_arguments_are_checked():
         rnnkit.sweep(df, cfg, {"hidden": [2]}, folds=2, fold_window="rolling", progress=False)
     with pytest.raises(rnnkit.DataError, match="fewer `folds`"):  # every fold run failed on its data
         rnnkit.sweep(df, cfg, {"hidden": [2, 3]}, folds=40, test_size=10, progress=False)
+
+
+def test_the_schema_checks_scoring():
+    from rnnkit.sweeps._export import document, validate
+
+    doc = document(rnnkit.Config(**BASE), scoring={"folds": 3, "scheme": "rolling origin",
+                                                   "window": 40, "test_size": 10, "seed": 0})
+    validate(doc)
+    for bad in ({"folds": 0, "scheme": "split"}, {"folds": 2, "scheme": "sliding"},
+                {"folds": 2, "scheme": "rolling origin", "window": "growing"},
+                {"folds": 2, "scheme": "split", "extra": 1}, {"scheme": "split"}):
+        with pytest.raises(ValueError, match="scoring"):
+            validate({**doc, "scoring": bad})
