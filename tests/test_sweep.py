@@ -335,8 +335,12 @@ def test_any_executor_stop_and_errors(sunspots, tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise RuntimeError("a bug, not bad data")
     monkeypatch.setattr("rnnkit.sweeps._runner.fit", broken)
-    with ThreadPoolExecutor(max_workers=2) as pool, pytest.raises(RuntimeError, match="a bug"):
+    # Any exception inside a run is that run's failed row; the sweep stores it and goes on.
+    with ThreadPoolExecutor(max_workers=2) as pool, \
+            pytest.raises(DataError, match="RuntimeError: a bug, not bad data"):
         sweep(sunspots, BASE, {"window": [5, 6]}, executor=pool, store=db, progress=False)
+    with rnnkit.RunStore(db) as store:
+        assert sum(r["status"] == "failed" for r in store.records()) == 2
 
 
 def test_classification_sweep_ranks_by_log_loss():

@@ -18,7 +18,7 @@ from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_
                       plain_label, read_times, require_column, resolve_columns, resolve_season)
 from ._config import Config
 from ._errors import DataError
-from ._split import PART_NAMES, assign_parts, check_windows, target_mask, window_starts
+from ._split import PART_NAMES, assign_parts, check_scorable, check_windows, target_mask, window_starts
 from ._windows import Prepared, fit_scaler
 
 
@@ -128,6 +128,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         window = config.window
     horizon = 0 if full else config.horizon
     check_windows(starts, config, n, span, split_codes)
+    check_scorable(starts, lengths, span, boundary, n, config)
 
     # 6. class labels: the classes seen in training targets, sorted
     classes = None

@@ -217,6 +217,33 @@ def check_windows(starts: dict, config, n: int, span: int, split_codes) -> None:
                             f"{config.gap} rows first); lower `window`/`horizon`/`gap` or give {name} more rows")
 
 
+def check_scorable(starts: dict, lengths: dict, span: int, boundary, n: int, config) -> None:
+    """Refuse, before training, a regression frame whose training part the baselines cannot use.
+
+    The linear-AR baseline needs two training windows, and the MASE scale two
+    consecutive training rows of one sequence (Hyndman & Koehler 2006).
+    """
+    if config.task != "regression":
+        return
+    s = starts["train"]
+    if len(s) < 2:
+        raise DataError(f"the train part has {len(s)} window(s); the linear AR baseline the network is "
+                        "compared with needs at least 2: lower `window`/`horizon` or give train more rows")
+    end = s + (lengths["train"] if lengths["train"] is not None else span)
+    cover = np.zeros(n + 1, dtype=np.int64)
+    np.add.at(cover, s, 1)
+    np.add.at(cover, end, -1)
+    covered = np.cumsum(cover[:-1]) > 0  # (n,) rows some training window reads
+    pairs = covered[1:] & covered[:-1]
+    if boundary is not None:
+        pairs &= ~np.asarray(boundary, bool)[1:]  # the second row starts a new sequence
+    if not pairs.any():
+        raise DataError("no training sequence has two consecutive rows (each sequence is one row long); "
+                        "MASE and the naive baselines need a previous value in the same sequence: give "
+                        "each sequence at least 2 rows, or set `group_column` to a column that gathers "
+                        "several rows per sequence")
+
+
 def target_mask(starts: np.ndarray, lengths: Optional[np.ndarray], off: Tuple[int, int], n: int) -> np.ndarray:
     """(n,) bool: rows that are the target of some window.
 

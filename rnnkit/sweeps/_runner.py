@@ -159,7 +159,7 @@ def flat_metrics(metrics: pd.DataFrame) -> Dict[str, float]:
 
 def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
             x64: Optional[bool] = None) -> dict:
-    """Fit one Config and return its outcome; a DataError becomes a "failed" outcome.
+    """Fit one Config and return its outcome; any exception becomes a "failed" outcome.
 
     Args:
         df: the frame.
@@ -175,12 +175,22 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
     t0 = time.perf_counter()
     try:
         res = fit(df, config, progress=False, shapes=shapes)
-    except DataError as e:
-        return {"status": "failed", "epochs": 0, "seconds": time.perf_counter() - t0,
-                "compiles": 0, "metrics": {}, "message": str(e)}
+    except Exception as e:  # noqa: BLE001 - a failure is one run's result, never the sweep's end
+        return failed_outcome(e, time.perf_counter() - t0)
     return {"status": res.status, "epochs": int(len(res.history)),
             "seconds": time.perf_counter() - t0, "compiles": int(res.compiles),
             "metrics": flat_metrics(res.metrics), "message": ""}
+
+
+def failure_message(e: BaseException) -> str:
+    """The message of a failed run: a DataError's own text, else the exception's type and text."""
+    return str(e) if isinstance(e, DataError) else f"{type(e).__name__}: {e}"
+
+
+def failed_outcome(e: BaseException, seconds: float = 0.0) -> dict:
+    """The outcome dict of a run that raised `e`."""
+    return {"status": "failed", "epochs": 0, "seconds": float(seconds), "compiles": 0,
+            "metrics": {}, "message": failure_message(e)}
 
 
 def remote_run(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: bool,
@@ -207,7 +217,7 @@ def _data_key(config: Config) -> Config:
 
 
 def plan_shapes(df: pd.DataFrame, configs: Sequence[Config]):
-    """Common padded shapes for the runs, and the DataError message of runs that cannot be prepared.
+    """Common padded shapes for the runs, and the message of runs that cannot be prepared.
 
     Returns:
         (shapes, failed): shapes[i] a dict for ``train(shapes=)`` or None;
@@ -219,14 +229,14 @@ def plan_shapes(df: pd.DataFrame, configs: Sequence[Config]):
         if k not in prepared:
             try:
                 prepared[k] = prepare(df, c)
-            except DataError as e:
+            except Exception as e:  # noqa: BLE001 - recorded as the run's failure
                 prepared[k] = e
-        if isinstance(prepared[k], DataError):
-            failed[i] = str(prepared[k])
+        if isinstance(prepared[k], Exception):
+            failed[i] = failure_message(prepared[k])
     # Runs can share a program only when they agree on everything but the window geometry.
     families: Dict[tuple, list] = {}
     for k, p in prepared.items():
-        if not isinstance(p, DataError):
+        if not isinstance(p, Exception):
             families.setdefault((k.task, k.mode, k.dtype, p.n_inputs, p.n_outputs), []).append(k)
     plans = {}
     for members in families.values():
@@ -250,7 +260,7 @@ def _fingerprints(df, configs) -> List[str]:
         if cols not in cache:
             try:
                 cache[cols] = fingerprint(df, c)
-            except DataError:
+            except Exception:  # noqa: BLE001 - the run will fail and say why
                 cache[cols] = fingerprint(df, None)  # the run will fail; key it by the whole frame
         out.append(cache[cols])
     return out
@@ -348,7 +358,11 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
             finished, _ = cf.wait(running, timeout=0.5, return_when=cf.FIRST_COMPLETED)
             for f in finished:
                 i = running.pop(f)
-                finish(i, f.result())  # a worker's unexpected error ends the sweep here
+                try:
+                    outcome = f.result()
+                except Exception as e:  # noqa: BLE001 - a lost worker or a task that could not be sent
+                    outcome = failed_outcome(e)
+                finish(i, outcome)
             if stop is not None and stop.is_set():
                 for f in [f for f in running if f.cancel()]:
                     running.pop(f)

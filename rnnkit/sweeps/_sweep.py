@@ -115,8 +115,10 @@ class SweepResult:
             mean (named as the metric), ``<metric>_std`` (sample std over
             seeds), ``seed_spread`` (max - min over seeds), the test score and
             the baselines' mean for the same metric, ``diverged`` and ``failed``
-            (shares of the setting's runs). Best first (lower is better except
-            for accuracy, balanced_accuracy and r2); settings without a score last.
+            (shares of the setting's runs) and ``reason`` (the message of the
+            setting's first failed run, "" when none failed). Best first (lower
+            is better except for accuracy, balanced_accuracy and r2); settings
+            without a score (every run failed or diverged) last.
         """
         self._require_metric()
         t, m = self.table, self.metric
@@ -130,6 +132,9 @@ class SweepResult:
             out[c] = g[c].mean()
         out["diverged"] = g["status"].agg(lambda s: float(s.str.startswith("diverged").mean()))
         out["failed"] = g["status"].agg(lambda s: float((s == "failed").mean()))
+        why = t["message"].where(t["status"] == "failed", "").fillna("")
+        out["reason"] = why.groupby([t[f] for f in self.varied], dropna=False, sort=False).agg(
+            lambda s: next((m for m in s if m), ""))
         out = out.sort_values(m, ascending=not higher_is_better(m), na_position="last", kind="stable")
         out.insert(0, "rank", np.arange(1, len(out) + 1))
         return out.reset_index()
@@ -204,7 +209,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
     Returns:
         SweepResult.
     Raises:
-        DataError when every planned run failed on its data (one failing run is a row).
+        DataError when every planned run failed (any exception inside one run, not only
+        bad data, is that run's failed row with its message; the sweep goes on).
     """
     if not isinstance(df, pd.DataFrame):
         raise TypeError(f"`df` must be a pandas DataFrame, got {type(df).__name__}")
@@ -225,8 +231,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
     records = run(df, configs, store=store, workers=workers, executor=executor,
                   progress=progress, stop=stop, on_run=on_run)
     if len(records) == len(configs) and all(r["status"] == "failed" for r in records):
-        raise DataError(f"every one of the {len(records)} runs failed on its data; the first: "
-                        f"{records[0]['message']}")
+        raise DataError(f"every one of the {len(records)} runs failed (each is stored as a failed "
+                        f"row); the first: {records[0]['message']}")
     result = SweepResult(records, metric=metric, varied=list(space), config=config,
                          planned=len(configs), df=df)
     if any(r["status"] != "failed" for r in records):
