@@ -66,8 +66,9 @@ def test_schema_choices_equal_config_choices():
 
 
 # Values tried in every field: each type, each boundary of the ranges, each choice.
-_PROBES = [None, True, False, 0, 1, 2, -1, 0.5, 1.0, 1.5, 10, 10.5, 100, 100.5, 4096, 4097,
-           65536, 65537, 100000, 100001, 2**31 - 1, 2**31, 1e6, 1e7, float("inf"), "", "a", "auto", "full",
+_PROBES = [None, True, False, 0, 1, 2, -1, 0.5, 1.0, 1.5, 10, 10.5, 100, 100.5, 4096, 4097, 10**30,
+           65536, 65537, 100000, 100001, 100000000, 100000001, 2**31 - 1, 2**31, 1e6, 1e7,
+           float("inf"), "", "a", "auto", "full",
            "none", [], ["a"], ["a", "b"], ["a", "a"], ["a", 1], [0.7, 0.15, 0.15], [0.6, 0.4, 0.0],
            [1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.5, 0.5], ["a", "b", "c"], {"a": 1}]
 _PROBES += sorted({v for p in CONFIG_SCHEMA["properties"].values() for v in p.get("enum", ())})

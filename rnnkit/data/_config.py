@@ -22,6 +22,11 @@ MISSING = ("error", "ffill", "interpolate")
 SHORT = ("error", "drop")
 OPTIMIZERS = ("sgd", "momentum", "rmsprop", "adam", "adamw")
 DTYPES = ("float32", "float64")
+# Upper bounds of the whole-number fields: far above any sensible run, low enough that a
+# typo (1e30 steps) fails here instead of looping, overflowing or allocating until killed.
+MAX_STEPS = 100_000  # window, horizon, season (steps)
+MAX_GAP = 100_000_000  # gap (rows)
+MAX_EPOCHS = 100_000  # epochs, patience
 
 
 @dataclass(frozen=True)
@@ -176,10 +181,10 @@ def _check(c: Config) -> None:
         if c.group_column is None:
             raise ValueError("`window`='full' classifies whole sequences and needs `group_column` "
                              "(the column that names each sequence)")
-    elif not _is_int(c.window) or c.window < 1:
-        raise ValueError(f"`window` (={c.window!r}) must be a whole number >= 1 or 'full'")
-    if not _is_int(c.horizon) or c.horizon < 0:
-        raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number >= 0")
+    elif not _is_int(c.window) or not 1 <= c.window <= MAX_STEPS:
+        raise ValueError(f"`window` (={c.window!r}) must be a whole number from 1 to {MAX_STEPS} or 'full'")
+    if not _is_int(c.horizon) or not 0 <= c.horizon <= MAX_STEPS:
+        raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number from 0 to {MAX_STEPS}")
     if c.task == "regression" and c.target_as_input and c.window == "full":
         raise ValueError("`window`='full' predicts the target at each sequence's last row; with "
                          "`target_as_input`=true the network would see that value as its last input; "
@@ -196,10 +201,12 @@ def _check(c: Config) -> None:
                          "must sum to 1, for example (0.7, 0.15, 0.15)")
     if c.split[0] <= 0 or c.split[1] <= 0:
         raise ValueError(f"`split` (={list(c.split)!r}) needs a training and a validation part > 0")
-    if not _is_int(c.gap) or c.gap < 0:
-        raise ValueError(f"`gap` (={c.gap!r}) must be a whole number of rows >= 0")
-    if c.season is not None and c.season != "auto" and (not _is_int(c.season) or c.season < 1):
-        raise ValueError(f"`season` (={c.season!r}) must be a whole number of steps >= 1, 'auto' or None")
+    if not _is_int(c.gap) or not 0 <= c.gap <= MAX_GAP:
+        raise ValueError(f"`gap` (={c.gap!r}) must be a whole number of rows from 0 to {MAX_GAP}")
+    if c.season is not None and c.season != "auto" and (not _is_int(c.season)
+                                                        or not 1 <= c.season <= MAX_STEPS):
+        raise ValueError(f"`season` (={c.season!r}) must be a whole number of steps from 1 to "
+                         f"{MAX_STEPS}, 'auto' or None")
 
     if not _is_int(c.hidden) or not 1 <= c.hidden <= 4096:
         raise ValueError(f"`hidden` (={c.hidden!r}) must be a whole number from 1 to 4096")
@@ -208,14 +215,15 @@ def _check(c: Config) -> None:
     if isinstance(c.weight_decay, bool) or not isinstance(c.weight_decay, (int, float)) \
             or not 0 <= c.weight_decay < 1:
         raise ValueError(f"`weight_decay` (={c.weight_decay!r}) must be in [0, 1)")
-    if not _is_int(c.epochs) or not 1 <= c.epochs <= 100_000:
-        raise ValueError(f"`epochs` (={c.epochs!r}) must be a whole number from 1 to 100000")
+    if not _is_int(c.epochs) or not 1 <= c.epochs <= MAX_EPOCHS:
+        raise ValueError(f"`epochs` (={c.epochs!r}) must be a whole number from 1 to {MAX_EPOCHS}")
     if not _is_int(c.batch_size) or not 1 <= c.batch_size <= 65_536:
         raise ValueError(f"`batch_size` (={c.batch_size!r}) must be a whole number from 1 to 65536")
     if c.clip is not None:
         _positive_float(c, "clip", c.clip, upper=1e6)
-    if c.patience is not None and (not _is_int(c.patience) or c.patience < 1):
-        raise ValueError(f"`patience` (={c.patience!r}) must be a whole number >= 1 or None")
+    if c.patience is not None and (not _is_int(c.patience) or not 1 <= c.patience <= MAX_EPOCHS):
+        raise ValueError(f"`patience` (={c.patience!r}) must be a whole number from 1 to {MAX_EPOCHS} "
+                         "or None")
     if not _is_int(c.seed) or not 0 <= c.seed < 2**31:
         raise ValueError(f"`seed` (={c.seed!r}) must be a whole number from 0 to 2**31-1")
 

@@ -19,6 +19,8 @@ from ..data._config import Config, config_fields
 
 STRATEGIES = ("grid", "random")
 _RANGE_KEYS = {"low", "high", "log", "int"}
+MAX_SEEDS = 1000  # seeds per setting (a count or a list)
+MAX_SAMPLES = 100_000  # random settings to draw
 
 
 def _plain(v):
@@ -78,11 +80,13 @@ def check_space(space, strategy: str) -> Dict[str, Union[list, dict]]:
 def seed_list(config: Config, seeds) -> List[int]:
     """`seeds` as a list: a count n gives config.seed + 0..n-1; a list is taken as given."""
     if isinstance(seeds, (int, np.integer)) and not isinstance(seeds, bool):
-        if seeds < 1:
-            raise ValueError(f"`seeds` (={seeds!r}) must be >= 1 (the number of seeds per setting) "
-                             "or a list of seeds")
+        if not 1 <= seeds <= MAX_SEEDS:
+            raise ValueError(f"`seeds` (={seeds!r}) must be from 1 to {MAX_SEEDS} (the number of seeds "
+                             "per setting) or a list of seeds")
         return [config.seed + k for k in range(int(seeds))]
     if isinstance(seeds, (list, tuple, np.ndarray, range)) and len(seeds) > 0:
+        if len(seeds) > MAX_SEEDS:
+            raise ValueError(f"`seeds` lists {len(seeds)} seeds; at most {MAX_SEEDS} are allowed")
         out = [_plain(s) for s in seeds]
         if len(set(out)) != len(out):
             raise ValueError(f"`seeds` (={out!r}) repeats a seed; give distinct seeds")
@@ -110,9 +114,10 @@ def settings(space: dict, strategy: str, n_samples: Optional[int], seed: int) ->
             raise ValueError(f"`n_samples` (={n_samples!r}) is for strategy='random'; the grid "
                              "runs every combination (leave n_samples None)")
         return [dict(zip(names, combo)) for combo in itertools.product(*space.values())]
-    if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
-        raise ValueError(f"`n_samples` (={n_samples!r}) must be a whole number >= 1 with "
-                         "strategy='random'")
+    if (isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer))
+            or not 1 <= n_samples <= MAX_SAMPLES):
+        raise ValueError(f"`n_samples` (={n_samples!r}) must be a whole number from 1 to {MAX_SAMPLES} "
+                         "with strategy='random'")
     rng = np.random.default_rng(seed)
     if all(isinstance(v, list) for v in space.values()):
         # Only lists: draw distinct grid points, so no setting is run twice.

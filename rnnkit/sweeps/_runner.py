@@ -47,6 +47,20 @@ WORKER_ENV = {
 TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "optimizer", "lr",
                    "weight_decay", "epochs", "batch_size", "clip", "patience", "seed")
 _ENV_LOCK = threading.Lock()
+MAX_WORKERS = 1024  # worker processes or runs in flight
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (its CPU affinity where the system has one)."""
+    if hasattr(os, "sched_getaffinity"):
+        return max(len(os.sched_getaffinity(0)), 1)
+    return max(os.cpu_count() or 1, 1)
+
+
+def pool_size(workers: int, runs: int) -> int:
+    """Processes our own pool starts: `workers`, but no more than the runs and the usable cores
+    (each worker binds itself to one core, so more would only queue and cost memory)."""
+    return max(1, min(int(workers), int(runs), usable_cores()))
 
 
 def worker_env(base: Optional[dict] = None) -> dict:
@@ -341,6 +355,8 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
 def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> None:
     """Submit runs to a pool (ours) or the caller's executor; store each result as it comes."""
     own = executor is None
+    if own:
+        workers = pool_size(workers, len(tasks))
     pool = process_pool(workers) if own else executor
     cache_env, cache_dir = _shared_compile_cache() if own else ({}, None)
     limit = workers if (own or workers > 1) else max(len(tasks), 1)

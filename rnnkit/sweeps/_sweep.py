@@ -23,7 +23,7 @@ from ..data._config import Config
 from ..data._errors import DataError
 from ._export import document, write_document
 from ._plan import plan
-from ._runner import run
+from ._runner import MAX_WORKERS, run
 
 METRICS = {"regression": ("mae", "rmse", "mase", "r2"),
            "classification": ("accuracy", "balanced_accuracy", "log_loss")}
@@ -192,7 +192,9 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         seeds: seeds per setting (count: config.seed + 0..n-1) or a list of seeds.
         metric: score to rank by; default "val_rmse" (regression) / "val_log_loss"
             (classification).
-        workers: processes to run in (1: this process). Each worker is a spawned
+        workers: processes to run in (1: this process; at most MAX_WORKERS). Our own
+            pool starts no more processes than there are runs to do and usable
+            cores (``pool_size``). Each worker is a spawned
             process bound to one core (round robin), so XLA and BLAS run one
             thread there; results equal the serial run's to float32 rounding.
             Its processes share a temporary compilation cache.
@@ -218,8 +220,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
     if not isinstance(config, Config):
         raise TypeError(f"`config` must be an rnnkit.Config or None, got {type(config).__name__}")
     metric = _check_metric(metric, config.task)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise ValueError(f"`workers` (={workers!r}) must be a whole number >= 1")
+    if isinstance(workers, bool) or not isinstance(workers, int) or not 1 <= workers <= MAX_WORKERS:
+        raise ValueError(f"`workers` (={workers!r}) must be a whole number from 1 to {MAX_WORKERS}")
     if executor is not None and not isinstance(executor, cf.Executor):
         raise TypeError(f"`executor` (={executor!r}) must be a concurrent.futures.Executor, e.g. "
                         "dask.distributed.Client(...).get_executor(), or None")
