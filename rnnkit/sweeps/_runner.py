@@ -328,6 +328,12 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
         if on_run is not None:
             on_run(rec)
 
+    def stopped():
+        return stop is not None and stop.is_set()
+
+    def claim(i):  # False: another process runs it (or has stored it)
+        return store.claim(keys[i])
+
     try:
         if todo:
             shapes, failed = plan_shapes(df, [configs[i] for i in todo])
@@ -339,21 +345,47 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
                 else:
                     tasks.append((i, shapes[j]))
             x64 = bool(jax.config.jax_enable_x64)
-            if executor is None and workers == 1:
-                for i, s in tasks:
-                    if stop is not None and stop.is_set():
-                        break
-                    finish(i, run_one(df, configs[i], s))
-            else:
-                _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish)
+            while tasks and not stopped():
+                if executor is None and workers == 1:
+                    skipped = []
+                    for i, s in tasks:
+                        if stopped():
+                            break
+                        if not claim(i):
+                            skipped.append((i, s))
+                            continue
+                        finish(i, run_one(df, configs[i], s))
+                else:
+                    skipped = _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish,
+                                            claim)
+                tasks = _wait_for_others(store, keys, skipped, stopped, bar)
     finally:
+        store.release()
         bar.close()
     got = store.get(keys)
     return [got[k] for k in dict.fromkeys(keys) if k in got]
 
 
-def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> None:
-    """Submit runs to a pool (ours) or the caller's executor; store each result as it comes."""
+def _wait_for_others(store, keys, skipped, stopped, bar, poll: float = 0.5) -> list:
+    """Wait while other processes run the `skipped` runs they claimed; return those to run here
+    (not stored, and their claim gone: the other process stopped or died), or [] when all are stored."""
+    while skipped and not stopped():
+        done = store.keys()
+        left = [t for t in skipped if keys[t[0]] not in done]
+        bar.update(len(skipped) - len(left))
+        skipped = left
+        busy = store.claimed_elsewhere(keys[i] for i, _ in left)
+        if any(keys[i] not in busy for i, _ in left):
+            return left
+        if left:
+            time.sleep(poll)
+    return []
+
+
+def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish, claim) -> list:
+    """Submit runs to a pool (ours) or the caller's executor; store each result as it comes.
+
+    Returns the tasks not run because `claim` said another process runs them."""
     own = executor is None
     if own:
         workers = pool_size(workers, len(tasks))
@@ -362,11 +394,15 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
     limit = workers if (own or workers > 1) else max(len(tasks), 1)
     pending = interleave(tasks, configs)
     running: Dict[cf.Future, int] = {}
+    skipped = []
     ok = False
     try:
         while pending or running:
             while pending and len(running) < limit and not (stop is not None and stop.is_set()):
                 i, s = pending.pop(0)
+                if not claim(i):
+                    skipped.append((i, s))
+                    continue
                 with _spawn_env(cache_env) if own else contextlib.nullcontext():
                     running[pool.submit(remote_run, df, configs[i], s, x64, os.getpid())] = i
             if not running:
@@ -392,3 +428,4 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish) -> N
             pool.shutdown(wait=ok, cancel_futures=True)
         if cache_dir is not None:
             shutil.rmtree(cache_dir, ignore_errors=True)
+    return skipped
