@@ -14,7 +14,7 @@ from typing import Optional
 import numpy as np
 import pandas as pd
 
-from ..evaluation._baselines import baseline_predictions, fit_baselines, prepared_mase_scale
+from ..evaluation._baselines import baseline_predictions, fit_baselines, parts_before, prepared_mase_scale
 from ..data._config import Config
 from ..data._errors import DataError
 from ..data._prepare import prepare
@@ -86,7 +86,8 @@ def score(prepared, actual: np.ndarray, outputs: dict):
     regression = prepared.classes is None
     names = REGRESSION_METRICS if regression else CLASSIFICATION_METRICS
     scale = prepared_mase_scale(prepared) if regression else None
-    fitted = fit_baselines(prepared)
+    # baselines fitted on every part before the scored one (test: train + val)
+    fitted = {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
     table = {"rnn": {}}
     matrices = {}
     for split in SCORED:
@@ -94,7 +95,7 @@ def score(prepared, actual: np.ndarray, outputs: dict):
             continue
         y = _truth(prepared, actual, split)
         found = {"rnn": outputs[split]}
-        found.update(baseline_predictions(prepared, split, fitted))
+        found.update(baseline_predictions(prepared, split, fitted[split]))
         for model, pred in found.items():
             m = _scores(y, pred, prepared, scale, model, split, names)
             table.setdefault(model, {}).update({f"{split}_{k}": v for k, v in m.items()})
