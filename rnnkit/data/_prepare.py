@@ -113,7 +113,8 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     n = len(rows)
 
     # 5. parts and window starts
-    part, notes, gap_rows = assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span)
+    part, notes, gap_rows = assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span,
+                                         labels=codes)
     for p, k in gap_rows.items():
         dropped.append((f"`gap` rows before {PART_NAMES[p]}", k))
     if full:
