@@ -22,6 +22,7 @@ MISSING = ("error", "ffill", "interpolate")
 SHORT = ("error", "drop")
 OPTIMIZERS = ("sgd", "momentum", "rmsprop", "adam", "adamw")
 DTYPES = ("float32", "float64")
+WATCHES = ("loss", "metric")
 # Upper bounds of the whole-number fields: far above any sensible run, low enough that a
 # typo (1e30 steps) fails here instead of looping, overflowing or allocating until killed.
 MAX_STEPS = 100_000  # window, horizon, season (steps)
@@ -69,6 +70,7 @@ class Config:
     batch_size: int = 64  # windows per minibatch
     clip: Optional[float] = 1.0  # global gradient-norm clip; None: no clipping
     patience: Optional[int] = 5  # epochs without validation gain before stopping; None: never
+    watch: str = "loss"  # what early stopping and the kept epoch watch on val: "loss", or "metric" (classification: accuracy, ties by loss)
     seed: int = 0  # seeds initialisation and shuffling
     dtype: str = "float32"  # "float32" or "float64"
 
@@ -136,7 +138,8 @@ def _check(c: Config) -> None:
     """Check every field; raise ValueError/TypeError naming the field and the fix."""
     for name, choices in (("task", TASKS), ("mode", MODES), ("scale", SCALES),
                           ("missing", MISSING), ("short_sequences", SHORT), ("activation", ACTIVATIONS),
-                          ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES)):
+                          ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES),
+                          ("watch", WATCHES)):
         v = getattr(c, name)
         if v not in choices:
             raise _bad(name, v, "one of " + ", ".join(repr(x) for x in choices))

@@ -145,12 +145,19 @@ class FitResult:
         self._diagnostics = diagnostics
         self._lock = threading.Lock()
 
+    @property
+    def watched(self) -> str:
+        """What chose the kept epoch and early stopping: "val_loss" or "val_accuracy" (config.watch)."""
+        metric = self.config.watch == "metric" and self.config.task == "classification"
+        return "val_accuracy" if metric else "val_loss"
+
     def __repr__(self) -> str:
         task = self.config.task
         col = "val_rmse" if task == "regression" else "val_accuracy"
         rnn = self.metrics[col].get("rnn", float("nan")) if col in self.metrics else float("nan")
         return (f"FitResult({task}, hidden={self.config.hidden}, activation={self.config.activation!r}, "
-                f"status={self.status!r}, epochs={len(self.history)}, {col}={rnn:.4g})")
+                f"status={self.status!r}, epochs={len(self.history)}, kept epoch {self.best_epoch} "
+                f"by {self.watched}, {col}={rnn:.4g})")
 
     @property
     def diagnostics(self):
