@@ -143,6 +143,9 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
 
     # 7. scaler fit on training rows only, then scale every row
     train = part == 0
+    if regression:
+        for t in targets:
+            _check_magnitude(values[t], t)
     scaled = input_names + ([t for t in targets if t not in input_names] if regression else [])
     scaler = fit_scaler(config.scale, scaled, [values[c][train] for c in scaled], input_names,
                         targets if regression else [])
@@ -289,6 +292,22 @@ def label_array(labels: list) -> np.ndarray:
     """
     mixed = len({type(v) for v in labels}) > 1
     return np.asarray(labels, dtype=object) if mixed else np.asarray(labels)
+
+
+# Squares of numbers below this underflow float64 (to 0 or to subnormals that lose digits), and
+# above its inverse overflow: errors of such targets would score RMSE 0 / R2 1, or inf.
+_SQUARE_SAFE = float(np.sqrt(np.finfo(np.float64).tiny))  # about 1.5e-154
+
+
+def _check_magnitude(v: np.ndarray, name: str) -> None:
+    """Refuse a target whose squared errors cannot be computed in float64."""
+    a = np.abs(v[np.isfinite(v)])
+    top = float(a.max()) if a.size else 0.0
+    if 0 < top < _SQUARE_SAFE or top > 1 / _SQUARE_SAFE:
+        k = -int(np.floor(np.log10(top)))
+        raise DataError(f"target column {name!r} holds values of order {top:.1e}: their squared errors "
+                        f"{'underflow' if top < 1 else 'overflow'} in float64, so RMSE and R2 would mean "
+                        f"nothing; rescale the column first, e.g. df[{name!r}] * 1e{k}")
 
 
 def _scaled(values, names, scaler, dtype) -> np.ndarray:

@@ -106,6 +106,35 @@ def score(prepared, actual: np.ndarray, outputs: dict):
     return metrics.astype(np.float64).rename_axis("model"), matrices
 
 
+FAR_WORSE = 2.0  # network val RMSE this many times the best baseline's gets a note (common practice, no source)
+ACCURACY_SHORT = 0.2  # classification: val accuracy this far below the best baseline's gets one
+
+
+def fit_notes(metrics: pd.DataFrame, prepared) -> tuple:
+    """Sentences a reader must see beside the scores: a network far behind the best
+    baseline, a MASE that is undefined (constant training target)."""
+    notes = []
+    if "val_rmse" in metrics.columns:
+        rnn, others = metrics.loc["rnn", "val_rmse"], metrics["val_rmse"].drop("rnn").dropna()
+        if len(others) and np.isfinite(rnn) and rnn > FAR_WORSE * others.min():
+            name = others.idxmin()
+            notes.append(f"the network's val RMSE ({rnn:.4g}) is {rnn / others.min():.3g} times the best "
+                         f"baseline's ({name}, {others.min():.4g}): it is far worse than a baseline; try "
+                         "a lower `lr`, more `epochs` or another `window`")
+        scale = prepared_mase_scale(prepared)
+        if np.any(scale == 0):
+            notes.append("the target does not change between consecutive training rows (a constant "
+                         "training target): MASE, scaled by that in-sample naive error of 0, is "
+                         "undefined and reported as NaN")
+    if "val_accuracy" in metrics.columns:
+        rnn, others = metrics.loc["rnn", "val_accuracy"], metrics["val_accuracy"].drop("rnn").dropna()
+        if len(others) and np.isfinite(rnn) and rnn < others.max() - ACCURACY_SHORT:
+            notes.append(f"the network's val accuracy ({rnn:.3g}) is far below the best baseline's "
+                         f"({others.idxmax()}, {others.max():.3g}); try a lower `lr`, more `epochs` "
+                         "or more `hidden` units")
+    return tuple(notes)
+
+
 class FitResult:
     """One trained network and everything measured about it.
 
@@ -123,12 +152,16 @@ class FitResult:
       prepared: the Prepared it was trained on (None when loaded without data).
       best_epoch: the epoch whose parameters these are (0: the initial ones).
       compiles, seconds: training programs compiled, wall time of training.
+      notes: sentences to read beside the scores (a network far worse than the
+        best baseline, an undefined MASE); the data's own notes are in
+        ``prepared.notes``.
     """
 
     def __init__(self, *, params, spec: DataSpec, status, history, metrics, confusion=None,
                  prepared=None, actual=None, best_epoch=0, compiles=0, seconds=0.0,
-                 diagnostics=None, outputs=None, labels=None):
+                 diagnostics=None, outputs=None, labels=None, notes=()):
         self.params = params
+        self.notes = tuple(notes)  # sentences about the scores (fit_notes) to read beside them
         self.spec = spec
         self.config = spec.config
         self.status = status
@@ -272,7 +305,8 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
                      confusion=matrices, prepared=prepared, actual=actual,
                      best_epoch=outcome.best_epoch, compiles=outcome.compiles,
                      seconds=outcome.seconds, outputs=outputs,
-                     labels=zoned_labels(df, prepared.rows, cfg.time_column))
+                     labels=zoned_labels(df, prepared.rows, cfg.time_column),
+                     notes=fit_notes(metrics, prepared))
 
 
 def load_fit(path, df=None):
@@ -306,4 +340,5 @@ def load_fit(path, df=None):
     return FitResult(params=parts["params"], spec=spec, status=parts["status"], history=parts["history"],
                      metrics=parts["metrics"], confusion=parts["confusion"], prepared=prepared,
                      actual=actual, best_epoch=parts["best_epoch"], compiles=parts["compiles"],
-                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels)
+                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels,
+                     notes=parts.get("notes", ()))

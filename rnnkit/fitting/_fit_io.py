@@ -70,7 +70,8 @@ def _document(result) -> dict:
         "rnnkit_version": __version__,
         "config": result.config.to_dict(),
         "outcome": {"status": result.status, "best_epoch": result.best_epoch,
-                    "compiles": result.compiles, "seconds": result.seconds},
+                    "compiles": result.compiles, "seconds": result.seconds,
+                    "notes": list(result.notes)},
         "data": {
             "input_names": list(spec.input_names),
             "target_names": list(spec.target_names),
@@ -355,5 +356,5 @@ def read_fit(path) -> dict:
     diag = path / "diagnostics.npz"
     return dict(params=params, spec=spec, status=out["status"], history=history, metrics=metrics,
                 confusion=confusion, best_epoch=out["best_epoch"], compiles=out["compiles"],
-                seconds=out["seconds"],
+                seconds=out["seconds"], notes=tuple(str(n) for n in out.get("notes", [])),
                 read_diagnostics=lambda: _read(diag, _read_diagnostics) if diag.name in listed else None)
