@@ -14,7 +14,9 @@ import contextlib
 import datetime as _dt
 import multiprocessing
 import os
+import re
 import shutil
+import signal
 import tempfile
 import threading
 import time
@@ -29,7 +31,7 @@ from ..data._prepare import prepare
 from ..data._errors import DataError
 from ._export import fingerprint
 from ..fitting._fit import fit
-from ._store import open_store, run_key
+from ._store import open_store, process_alive, run_key
 from ..training._train import shape_plan
 
 # One XLA / BLAS thread per worker process, in its environment from the start (jax
@@ -103,6 +105,10 @@ def _worker_init(counter=None) -> None:
     # A no-op when the pool spawned us under _spawn_env; keeps later imports single-threaded otherwise.
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
+    # Ctrl-C in a terminal reaches every process of the group: the sweep's own process
+    # handles it (and ends its workers); a worker that also raised would leave the pool
+    # half-broken, with the parent waiting on it.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     if counter is None or not hasattr(os, "sched_setaffinity"):
         return
     with counter.get_lock():
@@ -124,10 +130,44 @@ def _shared_compile_cache() -> tuple:
     """
     if os.environ.get("JAX_COMPILATION_CACHE_DIR"):
         return {}, None
-    path = tempfile.mkdtemp(prefix="rnnkit-programs-")
+    remove_stale_caches()
+    path = tempfile.mkdtemp(prefix=f"{CACHE_PREFIX}{os.getpid()}-")
     return {"JAX_COMPILATION_CACHE_DIR": path,
             "JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS": "0",
             "JAX_PERSISTENT_CACHE_MIN_ENTRY_SIZE_BYTES": "0"}, path
+
+
+CACHE_PREFIX = "rnnkit-programs-"  # + "<pid of the sweep's process>-<random>"
+
+
+def remove_stale_caches(folder: Optional[str] = None) -> list:
+    """Remove compilation-cache folders of sweeps whose process is gone (killed before it could
+    clean up); returns the paths removed. Folders of live processes are left alone."""
+    folder = tempfile.gettempdir() if folder is None else folder
+    removed = []
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return removed
+    for name in names:
+        m = re.fullmatch(re.escape(CACHE_PREFIX) + r"(\d+)-\w+", name)
+        if m is None or process_alive(int(m.group(1))):
+            continue
+        path = os.path.join(folder, name)
+        if os.path.isdir(path) and not os.path.islink(path):
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(path)
+    return removed
+
+
+def _end_workers(pool: cf.ProcessPoolExecutor) -> None:
+    """Terminate our pool's processes at once (Ctrl-C or an error): runs in flight are lost,
+    finished ones are stored already, and nothing is left waiting on a worker."""
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        if proc.is_alive():
+            proc.terminate()
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        proc.join(timeout=5)
 
 
 def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
@@ -424,6 +464,8 @@ def _run_parallel(df, configs, tasks, x64, workers, executor, stop, finish, clai
         if not ok:
             for f in running:
                 f.cancel()
+            if own:
+                _end_workers(pool)
         if own:
             pool.shutdown(wait=ok, cancel_futures=True)
         if cache_dir is not None:

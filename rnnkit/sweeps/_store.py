@@ -307,7 +307,8 @@ class RunStore:
         return f"RunStore({None if self.path is None else str(self.path)!r})"
 
 
-def _alive(pid: int) -> bool:
+def process_alive(pid: int) -> bool:
+    """Whether a process with this id runs on this host (one we may not signal counts as running)."""
     try:
         os.kill(int(pid), 0)
     except ProcessLookupError:
@@ -319,7 +320,7 @@ def _alive(pid: int) -> bool:
 
 def _stale(host: str, pid: int, at: float) -> bool:
     """Whether a claim no longer holds: its process is gone (same host) or it is older than LEASE."""
-    if host == socket.gethostname() and not _alive(pid):
+    if host == socket.gethostname() and not process_alive(pid):
         return True
     return time.time() - float(at) > LEASE
 
