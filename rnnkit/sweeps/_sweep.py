@@ -186,7 +186,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         df: the frame (never modified).
         config: base Config (None: defaults); fields not in `space` keep its values.
         space: Config field -> list of values; strategy="random" also takes ranges
-            {"low", "high", "log", "int"}.
+            {"from": 1e-4, "to": 0.1, "spacing": "log"} ("spacing" "even" by default;
+            "whole": true draws whole numbers, both ends included).
         strategy: "grid" or "random".
         n_samples: settings to draw (random only).
         seeds: seeds per setting (count: config.seed + 0..n-1) or a list of seeds.
