@@ -236,6 +236,44 @@ def _positive_float(c, name, v, upper):
         raise ValueError(f"`{name}` (={v!r}) must be a number > 0 and <= {upper:g}")
 
 
+def _field_comments() -> dict:
+    """Field name -> its one-line comment, read from this file's class body (tokenize)."""
+    import io
+    import tokenize
+    from pathlib import Path
+
+    try:
+        source = Path(__file__).read_text(encoding="utf-8")
+    except OSError:
+        return {}
+    names = {f.name for f in fields(Config)}
+    out, in_class, line_start = {}, False, None
+    for tok in tokenize.generate_tokens(io.StringIO(source).readline):
+        if tok.type == tokenize.NAME and tok.string == "class" and tok.start[1] == 0:
+            in_class = False
+        if tok.type == tokenize.NAME and tok.string == "Config" and tok.line.startswith("class Config"):
+            in_class = True
+        if not in_class:
+            continue
+        if tok.type == tokenize.NAME and tok.start[1] == 4 and tok.string in names:
+            line_start = (tok.start[0], tok.string)
+        elif tok.type == tokenize.COMMENT and line_start and tok.start[0] == line_start[0]:
+            out[line_start[1]] = tok.string.lstrip("#").strip()
+    return out
+
+
+def _fields_doc() -> str:
+    """The "Fields" section of Config's docstring: every field, its default and its comment."""
+    comments = _field_comments()
+    lines = ["", "    Fields (name = default: meaning):"]
+    for f in fields(Config):
+        lines.append(f"        {f.name} = {f.default!r}: {comments.get(f.name, '')}".rstrip(": "))
+    return "\n".join(lines) + "\n"
+
+
+Config.__doc__ = (Config.__doc__ or "").rstrip() + "\n" + _fields_doc()
+
+
 def config_fields() -> Tuple[str, ...]:
     """Names of all Config fields, in order."""
     return tuple(f.name for f in fields(Config))

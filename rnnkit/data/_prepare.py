@@ -9,6 +9,7 @@ never copied out (see _windows.py).
 """
 from __future__ import annotations
 
+import warnings
 from typing import List, Optional
 
 import numpy as np
@@ -17,9 +18,12 @@ import pandas as pd
 from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_time, numeric_values,
                       plain_label, read_times, require_column, resolve_columns, resolve_season)
 from ._config import Config
-from ._errors import DataError
+from ._errors import DataError, SmallPartWarning
 from ._split import PART_NAMES, assign_parts, check_scorable, check_windows, target_mask, window_starts
 from ._windows import Prepared, fit_scaler
+
+
+MIN_SCORED_WINDOWS = 30  # fewer val/test windows than this get a warning (common practice, no source)
 
 
 def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
@@ -130,6 +134,14 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     horizon = 0 if full else config.horizon
     check_windows(starts, config, n, span, split_codes)
     check_scorable(starts, lengths, span, boundary, n, config)
+    for name in ("val", "test"):
+        k = len(starts[name])
+        if 0 < k < MIN_SCORED_WINDOWS:
+            unit = "sequences" if full else "windows"
+            msg = (f"the {name} part has only {k} {unit} (fewer than {MIN_SCORED_WINDOWS}): its scores "
+                   f"are noisy; give {name} more rows or compare runs over several seeds")
+            notes += (msg,)
+            warnings.warn(msg, SmallPartWarning, stacklevel=2)
 
     # 6. class labels: the classes seen in training targets, sorted
     classes = None
@@ -165,6 +177,12 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         counts["sequences"] = int(len(np.unique(gcode)))
     if config.season == "auto":
         notes += (f"`season`='auto' resolved to {season} ({season_how})",)
+    if config.target is None:
+        notes += (f"`target` chosen automatically: {targets[0]!r} (the first usable column); set "
+                  "`target` to choose",)
+    if config.features is None and feats:
+        notes += (f"input columns chosen automatically (every other numeric column): {list(feats)}; "
+                  "set `features` to choose (a year or counter column is rarely a useful input)",)
     resolved = config.replace(target=targets[0] if len(targets) == 1 else tuple(targets),
                               features=tuple(feats), season=season)
     for a in (inputs, targets_arr, index, rows):

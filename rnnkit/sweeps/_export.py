@@ -118,6 +118,14 @@ def used_columns(df: pd.DataFrame, config: Optional[Config]) -> list:
     return sorted(set(targets) | set(feats) | set(special))
 
 
+def resolved_columns(df: pd.DataFrame, config: Config) -> Config:
+    """`config` with the target and input columns it uses on `df` written out (a target or
+    features left to be chosen would choose other columns on a reordered frame)."""
+    special = [c for c in (config.time_column, config.group_column, config.split_column) if c]
+    targets, feats = resolve_columns(df, config, special)
+    return config.replace(target=targets[0] if len(targets) == 1 else tuple(targets), features=tuple(feats))
+
+
 def _missing(v) -> bool:
     m = pd.isna(v)
     return isinstance(m, (bool, np.bool_)) and bool(m)  # a list-like value is never "missing"
@@ -224,13 +232,17 @@ def document(config: Config, *, metric=None, metrics=None, data=None, notes=None
         config: the Config.
         metric: ``(name, value)`` or ``{"name", "value"}``: the score it was chosen by.
         metrics: ``{name: value}`` of every score.
-        data: a DataFrame (its fingerprint is computed with `config`) or a ready data dict.
+        data: a DataFrame (its fingerprint is computed with `config`, and the
+            config's target and features are written out as resolved on it) or a
+            ready data dict.
         notes: free text.
     Returns:
         dict, valid against the schema.
     """
     if not isinstance(config, Config):
         raise TypeError(f"`config` must be an rnnkit.Config, got {type(config).__name__}")
+    if isinstance(data, pd.DataFrame):
+        config = resolved_columns(data, config)
     doc = {"format": FORMAT, "version": VERSION, "config": config.to_dict()}
     if metric is not None:
         name, value = (metric["name"], metric["value"]) if isinstance(metric, dict) else metric
