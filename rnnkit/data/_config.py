@@ -70,7 +70,7 @@ class Config:
     batch_size: int = 64  # windows per minibatch
     clip: Optional[float] = 1.0  # global gradient-norm clip; None: no clipping
     patience: Optional[int] = 5  # epochs without validation gain before stopping; None: never
-    watch: str = "loss"  # what early stopping and the kept epoch watch on val: "loss", or "metric" (classification: accuracy, ties by loss)
+    watch: str = "loss"  # early stopping and kept epoch watch val "loss" or "metric" (accuracy; ties by loss)
     seed: int = 0  # seeds initialisation and shuffling
     dtype: str = "float32"  # "float32" or "float64"
 
