@@ -147,3 +147,16 @@ def test_a_kill_between_renames_is_recovered_on_the_next_load(trained, tmp_path)
     np.testing.assert_array_equal(loaded.params["V"], trained.params["V"])
     trained.save(folder)
     assert [p.name for p in tmp_path.iterdir() if p.name != "kill.py"] == ["m"]
+
+
+def test_a_save_in_progress_elsewhere_is_left_alone(trained, tmp_path):
+    folder = tmp_path / "m"
+    trained.save(folder)
+    gone = int(subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                              capture_output=True, text=True).stdout)
+    busy = tmp_path / f".m.{os.getpid()}-abc.tmp"  # a live process writing a new fit
+    dead = tmp_path / f".m.{gone}-def.tmp"  # left by a process that was killed
+    busy.mkdir()
+    dead.mkdir()
+    load_fit(folder)
+    assert busy.exists() and not dead.exists()

@@ -135,17 +135,35 @@ def _exchange(a: Path, b: Path) -> bool:
 
 
 def _leftovers(path: Path, kind: str) -> list:
-    """Our temporary (kind "tmp") or moved-aside ("old") folders beside `path`, newest first."""
+    """Our temporary (kind "tmp") or moved-aside ("old") folders beside `path` whose writing
+    process is gone (``.<name>.<pid>-*.tmp``, ``.<name>.old-<pid>-*``), newest first. A folder
+    of a live process is another save in progress and is left alone."""
     pattern = f".{path.name}.*.tmp" if kind == "tmp" else f".{path.name}.old-*"
-    found = [p for p in path.parent.glob(pattern) if p.is_dir()]
+    head = f".{path.name}." if kind == "tmp" else f".{path.name}.old-"
+    found = []
+    for p in path.parent.glob(pattern):
+        pid = p.name[len(head):].split("-", 1)[0]
+        if p.is_dir() and not (pid.isdigit() and _alive(int(pid))):
+            found.append(p)
     return sorted(found, key=lambda p: p.stat().st_mtime, reverse=True)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError):
+        return True
+    return True
 
 
 def recover(path) -> None:
     """Put a fit back at `path` if a save was killed between its two renames; remove leftovers.
 
-    A missing `path` with a moved-aside ``.<name>.old-*`` folder beside it means
-    the old fit was moved and the new one never arrived: the old one goes back.
+    A missing `path` with a moved-aside ``.<name>.old-<pid>-*`` folder beside it,
+    whose process is gone, means the old fit was moved and the new one never
+    arrived: the old one goes back. Leftovers of live processes are not touched.
     """
     path = Path(path)
     if not path.parent.is_dir():
@@ -177,7 +195,8 @@ def save_fit(result, path) -> None:
                              "choose a new or empty folder")
     path.parent.mkdir(parents=True, exist_ok=True)
     diag = result.diagnostics if (result.prepared is not None or result._diagnostics is not None) else None
-    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.{os.getpid()}-", suffix=".tmp", dir=path.parent))
+    old = None
     try:
         with open(tmp / "config.json", "w", encoding="utf-8") as f:
             json.dump(_document(result), f, indent=2, allow_nan=False)
@@ -194,13 +213,14 @@ def save_fit(result, path) -> None:
         elif _exchange(tmp, path):
             shutil.rmtree(tmp, ignore_errors=True)  # it holds the old fit now
         else:
-            old = path.parent / f".{path.name}.old-{uuid.uuid4().hex[:8]}"
+            old = path.parent / f".{path.name}.old-{os.getpid()}-{uuid.uuid4().hex[:8]}"
             os.rename(path, old)
-            os.rename(tmp, path)  # a kill before this line: recover() puts `old` back
+            os.rename(tmp, path)  # a kill before this line: the next recover() puts `old` back
             shutil.rmtree(old, ignore_errors=True)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
-        recover(path)
+        if old is not None and old.exists() and not path.exists():
+            os.rename(old, path)  # interrupted between the renames: the old fit goes back
         raise
 
 
