@@ -289,8 +289,12 @@ def test_adapters_classification_windowed():
     codes = np.asarray(p.targets)
     expect = core.smooth_one_hot(codes[rows - 1], len(p.classes))
     np.testing.assert_allclose(out["last_label"], expect, **EXACT64)
-    freq = np.bincount(codes[p.target_rows("train")], minlength=3) / len(p.starts["train"])
+    # test scores come from baselines fitted on everything before the test part: train + val
+    seen = np.concatenate([p.target_rows("train"), p.target_rows("val")])
+    freq = np.bincount(codes[seen], minlength=3) / len(seen)
     np.testing.assert_allclose(out["majority"][0], freq, **EXACT64)
+    freq_train = np.bincount(codes[p.target_rows("train")], minlength=3) / len(p.starts["train"])
+    np.testing.assert_allclose(B.baseline_predictions(p, "val")["majority"][0], freq_train, **EXACT64)
     table = B.score_baselines(p)
     assert table.loc["last_label", "test_accuracy"] > table.loc["majority", "test_accuracy"]
 
@@ -313,12 +317,18 @@ def test_adapters_whole_sequences_on_basic_motions():
     p = prepare(df, Config(target="label", task="classification", window="full", group_column="case",
                            split_column="part", scale="none", season=None))
     classes = np.unique(ytr)
-    direct = classes[core.nearest_neighbour(xtr.transpose(0, 2, 1), np.searchsorted(classes, ytr),
-                                            xte.transpose(0, 2, 1), 4).argmax(1)]
-    for split, sel in (("val", te_part == "val"), ("test", te_part == "test")):
+    val = te_part == "val"
+
+    def direct(x_seen, y_seen):
+        return classes[core.nearest_neighbour(x_seen.transpose(0, 2, 1), np.searchsorted(classes, y_seen),
+                                              xte.transpose(0, 2, 1), 4).argmax(1)]
+    # val is scored by 1-NN over the training cases; test over training and validation cases
+    expected = {"val": direct(xtr, ytr)[val],
+                "test": direct(np.concatenate([xtr, xte[val]]), np.concatenate([ytr, yte[val]]))[~val]}
+    for split in ("val", "test"):
         out = B.baseline_predictions(p, split)
         assert set(out) == {"majority", "nearest_neighbour"}
-        np.testing.assert_array_equal(p.decode(out["nearest_neighbour"].argmax(1)), direct[sel])
+        np.testing.assert_array_equal(p.decode(out["nearest_neighbour"].argmax(1)), expected[split])
 
 
 def test_whole_sequence_regression_right_aligned_and_short_season():

@@ -146,5 +146,7 @@ def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
 
     cfg = rnnkit.load_config(export_path)
     # The notebook's settings, with the one control changed in the browser.
+    # (the document names the inputs the run used: every other numeric column)
     assert cfg == rnnkit.Config(target="load_kw", missing="interpolate", window=24,
-                                hidden=8, epochs=4, batch_size=32)
+                                hidden=8, epochs=4, batch_size=32,
+                                features=("outdoor_temp_c", "doors_open"))

@@ -155,7 +155,8 @@ def test_export_writes_the_controls_config_and_shows_it(trained, tmp_path):
     trained.export_button.click()  # quick: runs in the calling thread
     assert trained.status_level == "ok", trained.status.value
     cfg = rnnkit.load_config(path)
-    assert cfg == trained.config()
+    assert cfg == trained.config().replace(features=cfg.features)  # the document names the inputs
+    assert cfg.features == ("outdoor_temp_c", "doors_open")
     assert (cfg.seed, cfg.clip, cfg.hidden, cfg.activation) == (7, None, 5, "relu")
     assert json.loads(path.read_text())["config"]["seed"] == 7
     assert "&quot;seed&quot;: 7" in trained.views.document.value
@@ -280,7 +281,8 @@ def test_sweep_runs_every_combination_and_exports_the_winner(demo, start, tmp_pa
     c["path"].value = str(path)
     p.export_button.click()
     assert p.status_level == "ok" and "best sweep run" in p.status.value
-    assert rnnkit.load_config(path) == r.best()
+    best = rnnkit.load_config(path)
+    assert best == r.best().replace(features=best.features) and best.features  # inputs written out
 
 
 def test_stop_during_a_sweep_keeps_finished_runs(demo, start):

@@ -52,7 +52,7 @@ def test_grid_plan_sizes_and_order():
 
 
 def test_random_plan_ranges_are_respected_and_seeded():
-    space = {"lr": {"low": 1e-4, "high": 1e-1, "log": True}, "hidden": {"low": 8, "high": 64, "int": True},
+    space = {"lr": {"from": 1e-4, "to": 1e-1, "spacing": "log"}, "hidden": {"from": 8, "to": 64, "whole": True},
              "activation": ["tanh", "relu"]}
     cfgs = plan(BASE, space, strategy="random", n_samples=400, seed=1)
     lr = np.array([c.lr for c in cfgs])
@@ -79,10 +79,12 @@ def test_random_plan_ranges_are_respected_and_seeded():
     ({"activation": ["tanh", "softplus"]}, {}, "`activation`"),
     ({"hidden": 4}, {}, "space\\['hidden'\\]"),
     ({"hidden": []}, {}, "space\\['hidden'\\]"),
-    ({"lr": {"low": 1e-4, "high": 1e-1}}, {}, "ranges need strategy='random'"),
-    ({"lr": {"low": 0.0, "high": 1e-1, "log": True}}, {"strategy": "random", "n_samples": 2}, "'low' > 0"),
-    ({"lr": {"low": 0.1, "high": 0.01}}, {"strategy": "random", "n_samples": 2}, "below 'high'"),
-    ({"lr": {"lo": 0.1, "high": 0.2}}, {"strategy": "random", "n_samples": 2}, "not a range"),
+    ({"lr": {"from": 1e-4, "to": 1e-1}}, {}, "ranges need strategy='random'"),
+    ({"lr": {"from": 0.0, "to": 1e-1, "spacing": "log"}}, {"strategy": "random", "n_samples": 2}, "'from' > 0"),
+    ({"lr": {"from": 0.1, "to": 0.01}}, {"strategy": "random", "n_samples": 2}, "below 'to'"),
+    ({"lr": {"low": 0.1, "high": 0.2}}, {"strategy": "random", "n_samples": 2}, "not a range"),
+    ({"lr": {"from": 0.1, "to": 0.2, "spacing": "ln"}}, {"strategy": "random", "n_samples": 2}, "'spacing'"),
+    ({"hidden": {"from": 2, "to": 8.5, "whole": True}}, {"strategy": "random", "n_samples": 2}, "whole"),
     ({"seed": [1, 2]}, {}, "`seeds` argument"),
     ({"hidden": [4]}, {"n_samples": 3}, "`n_samples`"),
     ({"hidden": [4]}, {"strategy": "random"}, "`n_samples`"),
@@ -335,8 +337,12 @@ def test_any_executor_stop_and_errors(sunspots, tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise RuntimeError("a bug, not bad data")
     monkeypatch.setattr("rnnkit.sweeps._runner.fit", broken)
-    with ThreadPoolExecutor(max_workers=2) as pool, pytest.raises(RuntimeError, match="a bug"):
+    # Any exception inside a run is that run's failed row; the sweep stores it and goes on.
+    with ThreadPoolExecutor(max_workers=2) as pool, \
+            pytest.raises(DataError, match="RuntimeError: a bug, not bad data"):
         sweep(sunspots, BASE, {"window": [5, 6]}, executor=pool, store=db, progress=False)
+    with rnnkit.RunStore(db) as store:
+        assert sum(r["status"] == "failed" for r in store.records()) == 2
 
 
 def test_classification_sweep_ranks_by_log_loss():

@@ -11,13 +11,13 @@ Bad input ends with exit status 2 and one line on stderr that says what to fix.
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 from typing import Optional, Sequence
 
 _DATA_SUFFIXES = (".csv", ".parquet", ".pq")
 _SPACE_KEYS = ("config", "space", "strategy", "seeds", "n_samples", "metric")
+_MAX_WORKERS = 1024  # as rnnkit.sweeps._runner.MAX_WORKERS (kept here: the parser loads no jax)
 
 
 class UsageError(Exception):
@@ -75,13 +75,14 @@ def read_data(path: str, index_col: Optional[str] = "auto", keep: Optional[str] 
 
 
 def read_json(path: str, what: str) -> dict:
-    p = Path(path)
-    if not p.is_file():
+    from ..sweeps._export import read_json_file
+
+    if not Path(path).exists():
         raise UsageError(f"{what} {path}: no such file")
     try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as e:
-        raise UsageError(f"{what} {path}: not valid JSON (line {e.lineno}: {e.msg})") from None
+        doc = read_json_file(path, what)
+    except ValueError as e:
+        raise UsageError(str(e)) from None
     if not isinstance(doc, dict):
         raise UsageError(f"{what} {path}: the top level must be a JSON object")
     return doc
@@ -152,7 +153,8 @@ def cmd_sweep(args) -> int:
     config, space, options = read_space(args.space)
     df = read_data(args.data, args.index_col, keep=config.time_column)
     out.mkdir(parents=True, exist_ok=True)
-    result = sweep(df, config, space, workers=args.workers, store=args.store,
+    workers = _capped_workers(args.workers, config, space, options, args.folds)
+    result = sweep(df, config, space, workers=workers, store=args.store,
                    progress=not args.no_progress, folds=args.folds, **options)
     _atomic_csv(result.table, out / "results.csv")
     result.export(out / "best-config.json")
@@ -184,6 +186,25 @@ def cmd_backtest(args) -> int:
         print(v)
     print(f"wrote {out / 'results.csv'}, {out / 'errors.csv'} and {out / 'report.html'}")
     return 0
+
+
+def _capped_workers(workers: int, config, space, options, folds=None) -> int:
+    """--workers, capped at the planned runs and the usable cores, with a note on stderr."""
+    from ..sweeps._plan import plan
+    from ..sweeps._runner import pool_size, usable_cores
+
+    if workers <= 1:
+        return workers
+    try:
+        runs = len(plan(config, space, options.get("strategy", "grid"), options.get("n_samples"),
+                        options.get("seeds", 1))) * (folds or 1)
+    except (TypeError, ValueError):
+        return workers  # sweep() names the fault
+    n = pool_size(workers, runs)
+    if n < workers:
+        print(f"rnnkit sweep: note: --workers {workers} capped to {n} ({runs} run(s) planned, "
+              f"{usable_cores()} usable core(s))", file=sys.stderr)
+    return n
 
 
 def gradient_check_on_data(df, config, *, n_windows: int = 4):
@@ -302,8 +323,8 @@ def main(argv: Optional[Sequence[str]] = None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
-    if getattr(args, "workers", 1) is not None and getattr(args, "workers", 1) < 1:
-        parser.error("--workers must be at least 1")
+    if getattr(args, "workers", None) is not None and not 1 <= args.workers <= _MAX_WORKERS:
+        parser.error(f"--workers must be from 1 to {_MAX_WORKERS}")
     try:
         return args.func(args)
     except UsageError as e:

@@ -22,6 +22,12 @@ MISSING = ("error", "ffill", "interpolate")
 SHORT = ("error", "drop")
 OPTIMIZERS = ("sgd", "momentum", "rmsprop", "adam", "adamw")
 DTYPES = ("float32", "float64")
+WATCHES = ("loss", "metric")
+# Upper bounds of the whole-number fields: far above any sensible run, low enough that a
+# typo (1e30 steps) fails here instead of looping, overflowing or allocating until killed.
+MAX_STEPS = 100_000  # window, horizon, season (steps)
+MAX_GAP = 100_000_000  # gap (rows)
+MAX_EPOCHS = 100_000  # epochs, patience
 
 
 @dataclass(frozen=True)
@@ -64,6 +70,7 @@ class Config:
     batch_size: int = 64  # windows per minibatch
     clip: Optional[float] = 1.0  # global gradient-norm clip; None: no clipping
     patience: Optional[int] = 5  # epochs without validation gain before stopping; None: never
+    watch: str = "loss"  # early stopping and kept epoch watch val "loss" or "metric" (accuracy; ties by loss)
     seed: int = 0  # seeds initialisation and shuffling
     dtype: str = "float32"  # "float32" or "float64"
 
@@ -131,7 +138,8 @@ def _check(c: Config) -> None:
     """Check every field; raise ValueError/TypeError naming the field and the fix."""
     for name, choices in (("task", TASKS), ("mode", MODES), ("scale", SCALES),
                           ("missing", MISSING), ("short_sequences", SHORT), ("activation", ACTIVATIONS),
-                          ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES)):
+                          ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES),
+                          ("watch", WATCHES)):
         v = getattr(c, name)
         if v not in choices:
             raise _bad(name, v, "one of " + ", ".join(repr(x) for x in choices))
@@ -176,10 +184,10 @@ def _check(c: Config) -> None:
         if c.group_column is None:
             raise ValueError("`window`='full' classifies whole sequences and needs `group_column` "
                              "(the column that names each sequence)")
-    elif not _is_int(c.window) or c.window < 1:
-        raise ValueError(f"`window` (={c.window!r}) must be a whole number >= 1 or 'full'")
-    if not _is_int(c.horizon) or c.horizon < 0:
-        raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number >= 0")
+    elif not _is_int(c.window) or not 1 <= c.window <= MAX_STEPS:
+        raise ValueError(f"`window` (={c.window!r}) must be a whole number from 1 to {MAX_STEPS} or 'full'")
+    if not _is_int(c.horizon) or not 0 <= c.horizon <= MAX_STEPS:
+        raise ValueError(f"`horizon` (={c.horizon!r}) must be a whole number from 0 to {MAX_STEPS}")
     if c.task == "regression" and c.target_as_input and c.window == "full":
         raise ValueError("`window`='full' predicts the target at each sequence's last row; with "
                          "`target_as_input`=true the network would see that value as its last input; "
@@ -196,10 +204,12 @@ def _check(c: Config) -> None:
                          "must sum to 1, for example (0.7, 0.15, 0.15)")
     if c.split[0] <= 0 or c.split[1] <= 0:
         raise ValueError(f"`split` (={list(c.split)!r}) needs a training and a validation part > 0")
-    if not _is_int(c.gap) or c.gap < 0:
-        raise ValueError(f"`gap` (={c.gap!r}) must be a whole number of rows >= 0")
-    if c.season is not None and c.season != "auto" and (not _is_int(c.season) or c.season < 1):
-        raise ValueError(f"`season` (={c.season!r}) must be a whole number of steps >= 1, 'auto' or None")
+    if not _is_int(c.gap) or not 0 <= c.gap <= MAX_GAP:
+        raise ValueError(f"`gap` (={c.gap!r}) must be a whole number of rows from 0 to {MAX_GAP}")
+    if c.season is not None and c.season != "auto" and (not _is_int(c.season)
+                                                        or not 1 <= c.season <= MAX_STEPS):
+        raise ValueError(f"`season` (={c.season!r}) must be a whole number of steps from 1 to "
+                         f"{MAX_STEPS}, 'auto' or None")
 
     if not _is_int(c.hidden) or not 1 <= c.hidden <= 4096:
         raise ValueError(f"`hidden` (={c.hidden!r}) must be a whole number from 1 to 4096")
@@ -208,14 +218,15 @@ def _check(c: Config) -> None:
     if isinstance(c.weight_decay, bool) or not isinstance(c.weight_decay, (int, float)) \
             or not 0 <= c.weight_decay < 1:
         raise ValueError(f"`weight_decay` (={c.weight_decay!r}) must be in [0, 1)")
-    if not _is_int(c.epochs) or not 1 <= c.epochs <= 100_000:
-        raise ValueError(f"`epochs` (={c.epochs!r}) must be a whole number from 1 to 100000")
+    if not _is_int(c.epochs) or not 1 <= c.epochs <= MAX_EPOCHS:
+        raise ValueError(f"`epochs` (={c.epochs!r}) must be a whole number from 1 to {MAX_EPOCHS}")
     if not _is_int(c.batch_size) or not 1 <= c.batch_size <= 65_536:
         raise ValueError(f"`batch_size` (={c.batch_size!r}) must be a whole number from 1 to 65536")
     if c.clip is not None:
         _positive_float(c, "clip", c.clip, upper=1e6)
-    if c.patience is not None and (not _is_int(c.patience) or c.patience < 1):
-        raise ValueError(f"`patience` (={c.patience!r}) must be a whole number >= 1 or None")
+    if c.patience is not None and (not _is_int(c.patience) or not 1 <= c.patience <= MAX_EPOCHS):
+        raise ValueError(f"`patience` (={c.patience!r}) must be a whole number from 1 to {MAX_EPOCHS} "
+                         "or None")
     if not _is_int(c.seed) or not 0 <= c.seed < 2**31:
         raise ValueError(f"`seed` (={c.seed!r}) must be a whole number from 0 to 2**31-1")
 
@@ -223,6 +234,44 @@ def _check(c: Config) -> None:
 def _positive_float(c, name, v, upper):
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not 0 < v <= upper:
         raise ValueError(f"`{name}` (={v!r}) must be a number > 0 and <= {upper:g}")
+
+
+def _field_comments() -> dict:
+    """Field name -> its one-line comment, read from this file's class body (tokenize)."""
+    import io
+    import tokenize
+    from pathlib import Path
+
+    try:
+        source = Path(__file__).read_text(encoding="utf-8")
+    except OSError:
+        return {}
+    names = {f.name for f in fields(Config)}
+    out, in_class, line_start = {}, False, None
+    for tok in tokenize.generate_tokens(io.StringIO(source).readline):
+        if tok.type == tokenize.NAME and tok.string == "class" and tok.start[1] == 0:
+            in_class = False
+        if tok.type == tokenize.NAME and tok.string == "Config" and tok.line.startswith("class Config"):
+            in_class = True
+        if not in_class:
+            continue
+        if tok.type == tokenize.NAME and tok.start[1] == 4 and tok.string in names:
+            line_start = (tok.start[0], tok.string)
+        elif tok.type == tokenize.COMMENT and line_start and tok.start[0] == line_start[0]:
+            out[line_start[1]] = tok.string.lstrip("#").strip()
+    return out
+
+
+def _fields_doc() -> str:
+    """The "Fields" section of Config's docstring: every field, its default and its comment."""
+    comments = _field_comments()
+    lines = ["", "    Fields (name = default: meaning):"]
+    for f in fields(Config):
+        lines.append(f"        {f.name} = {f.default!r}: {comments.get(f.name, '')}".rstrip(": "))
+    return "\n".join(lines) + "\n"
+
+
+Config.__doc__ = (Config.__doc__ or "").rstrip() + "\n" + _fields_doc()
 
 
 def config_fields() -> Tuple[str, ...]:

@@ -9,6 +9,7 @@ never copied out (see _windows.py).
 """
 from __future__ import annotations
 
+import warnings
 from typing import List, Optional
 
 import numpy as np
@@ -17,9 +18,12 @@ import pandas as pd
 from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_time, numeric_values,
                       plain_label, read_times, require_column, resolve_columns, resolve_season)
 from ._config import Config
-from ._errors import DataError
-from ._split import PART_NAMES, assign_parts, check_windows, target_mask, window_starts
+from ._errors import DataError, SmallPartWarning
+from ._split import PART_NAMES, assign_parts, check_scorable, check_windows, target_mask, window_starts
 from ._windows import Prepared, fit_scaler
+
+
+MIN_SCORED_WINDOWS = 30  # fewer val/test windows than this get a warning (common practice, no source)
 
 
 def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
@@ -113,7 +117,8 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     n = len(rows)
 
     # 5. parts and window starts
-    part, notes, gap_rows = assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span)
+    part, notes, gap_rows = assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span,
+                                         labels=codes)
     for p, k in gap_rows.items():
         dropped.append((f"`gap` rows before {PART_NAMES[p]}", k))
     if full:
@@ -128,6 +133,15 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         window = config.window
     horizon = 0 if full else config.horizon
     check_windows(starts, config, n, span, split_codes)
+    check_scorable(starts, lengths, span, boundary, n, config)
+    for name in ("val", "test"):
+        k = len(starts[name])
+        if 0 < k < MIN_SCORED_WINDOWS:
+            unit = "sequences" if full else "windows"
+            msg = (f"the {name} part has only {k} {unit} (fewer than {MIN_SCORED_WINDOWS}): its scores "
+                   f"are noisy; give {name} more rows or compare runs over several seeds")
+            notes += (msg,)
+            warnings.warn(msg, SmallPartWarning, stacklevel=2)
 
     # 6. class labels: the classes seen in training targets, sorted
     classes = None
@@ -141,6 +155,9 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
 
     # 7. scaler fit on training rows only, then scale every row
     train = part == 0
+    if regression:
+        for t in targets:
+            _check_magnitude(values[t], t)
     scaled = input_names + ([t for t in targets if t not in input_names] if regression else [])
     scaler = fit_scaler(config.scale, scaled, [values[c][train] for c in scaled], input_names,
                         targets if regression else [])
@@ -160,6 +177,12 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         counts["sequences"] = int(len(np.unique(gcode)))
     if config.season == "auto":
         notes += (f"`season`='auto' resolved to {season} ({season_how})",)
+    if config.target is None:
+        notes += (f"`target` chosen automatically: {targets[0]!r} (the first usable column); set "
+                  "`target` to choose",)
+    if config.features is None and feats:
+        notes += (f"input columns chosen automatically (every other numeric column): {list(feats)}; "
+                  "set `features` to choose (a year or counter column is rarely a useful input)",)
     resolved = config.replace(target=targets[0] if len(targets) == 1 else tuple(targets),
                               features=tuple(feats), season=season)
     for a in (inputs, targets_arr, index, rows):
@@ -287,6 +310,22 @@ def label_array(labels: list) -> np.ndarray:
     """
     mixed = len({type(v) for v in labels}) > 1
     return np.asarray(labels, dtype=object) if mixed else np.asarray(labels)
+
+
+# Squares of numbers below this underflow float64 (to 0 or to subnormals that lose digits), and
+# above its inverse overflow: errors of such targets would score RMSE 0 / R2 1, or inf.
+_SQUARE_SAFE = float(np.sqrt(np.finfo(np.float64).tiny))  # about 1.5e-154
+
+
+def _check_magnitude(v: np.ndarray, name: str) -> None:
+    """Refuse a target whose squared errors cannot be computed in float64."""
+    a = np.abs(v[np.isfinite(v)])
+    top = float(a.max()) if a.size else 0.0
+    if 0 < top < _SQUARE_SAFE or top > 1 / _SQUARE_SAFE:
+        k = -int(np.floor(np.log10(top)))
+        raise DataError(f"target column {name!r} holds values of order {top:.1e}: their squared errors "
+                        f"{'underflow' if top < 1 else 'overflow'} in float64, so RMSE and R2 would mean "
+                        f"nothing; rescale the column first, e.g. df[{name!r}] * 1e{k}")
 
 
 def _scaled(values, names, scaler, dtype) -> np.ndarray:

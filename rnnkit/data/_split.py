@@ -133,7 +133,30 @@ def min_rows(span: int, split: Sequence[float], gap: int) -> int:
         n += 1
 
 
-def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span):
+def stratified_pick(labels: np.ndarray, k: int, seed: int) -> np.ndarray:
+    """Positions of `k` items drawn per class in proportion, after a seeded shuffle.
+
+    The usual stratified hold-out (as scikit-learn's StratifiedShuffleSplit):
+    each class gives round(k * n_c / n) items, the remainders going to the
+    largest fractions; a class keeps at least one item out of the pick.
+    Args:
+        labels: (N,) int class code per item. k: items to pick. seed: the shuffle's seed.
+    Returns:
+        (k',) int64 sorted positions, k' <= k (less only when classes are too small).
+    """
+    rng = np.random.default_rng(seed)
+    classes, counts = np.unique(labels, return_counts=True)
+    exact = k * counts / counts.sum()
+    quota = np.floor(exact).astype(np.int64)
+    rest = exact - quota
+    order = np.lexsort((rng.random(len(classes)), -rest))  # largest remainder first, ties at random
+    quota[order[:k - int(quota.sum())]] += 1
+    quota = np.minimum(quota, counts - 1)  # every class stays in the part it is taken from
+    picked = [rng.permutation(np.flatnonzero(labels == c))[:q] for c, q in zip(classes, quota)]
+    return np.sort(np.concatenate(picked)).astype(np.int64)
+
+
+def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span, labels=None):
     """Part code of every row: chronological rows, whole sequences, or the split column.
 
     Args:
@@ -191,15 +214,24 @@ def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span):
         gp = split_codes[first].copy()
         if not (gp == 1).any():
             tr = np.flatnonzero(gp == 0)
-            if ticks is not None:
-                tr = tr[np.argsort(ticks[first[tr]], kind="stable")]
             k = max(1, int(round(len(tr) * f[1] / (f[0] + f[1]))))
             if len(tr) - k < 1:
                 raise DataError(f"{config.split_column!r} has no 'val' sequences and only {len(tr)} 'train' "
                                 "sequence(s) to take them from; label some sequences 'val'")
-            gp[tr[len(tr) - k:]] = 1
-            notes += (f"no 'val' sequences in {config.split_column!r}: the last {k} training sequences "
-                      f"became val (val fraction {f[1]:g} of train + val)",)
+            if labels is not None and config.task == "classification":
+                # whole sequences, stratified by class (the label of each sequence's last row)
+                last = np.append(first[1:], n) - 1
+                pick = tr[stratified_pick(labels[last[tr]], k, config.seed)]
+                gp[pick] = 1
+                notes += (f"no 'val' sequences in {config.split_column!r}: {len(pick)} training sequences, "
+                          f"drawn per class in proportion (seed {config.seed}), became val "
+                          f"(val fraction {f[1]:g} of train + val)",)
+            else:
+                if ticks is not None:
+                    tr = tr[np.argsort(ticks[first[tr]], kind="stable")]
+                gp[tr[len(tr) - k:]] = 1
+                notes += (f"no 'val' sequences in {config.split_column!r}: the last {k} training sequences "
+                          f"became val (val fraction {f[1]:g} of train + val)",)
     if config.gap:
         notes += ("`gap` is not applied between whole sequences (they share no rows)",)
     return np.repeat(gp.astype(np.int8), size), notes, {}
@@ -215,6 +247,33 @@ def check_windows(starts: dict, config, n: int, span: int, split_codes) -> None:
             raise DataError(f"the {name} part has no complete window: a window needs window + horizon = {span} "
                             f"consecutive rows of one part and one sequence (val and test lose `gap` = "
                             f"{config.gap} rows first); lower `window`/`horizon`/`gap` or give {name} more rows")
+
+
+def check_scorable(starts: dict, lengths: dict, span: int, boundary, n: int, config) -> None:
+    """Refuse, before training, a regression frame whose training part the baselines cannot use.
+
+    The linear-AR baseline needs two training windows, and the MASE scale two
+    consecutive training rows of one sequence (Hyndman & Koehler 2006).
+    """
+    if config.task != "regression":
+        return
+    s = starts["train"]
+    if len(s) < 2:
+        raise DataError(f"the train part has {len(s)} window(s); the linear AR baseline the network is "
+                        "compared with needs at least 2: lower `window`/`horizon` or give train more rows")
+    end = s + (lengths["train"] if lengths["train"] is not None else span)
+    cover = np.zeros(n + 1, dtype=np.int64)
+    np.add.at(cover, s, 1)
+    np.add.at(cover, end, -1)
+    covered = np.cumsum(cover[:-1]) > 0  # (n,) rows some training window reads
+    pairs = covered[1:] & covered[:-1]
+    if boundary is not None:
+        pairs &= ~np.asarray(boundary, bool)[1:]  # the second row starts a new sequence
+    if not pairs.any():
+        raise DataError("no training sequence has two consecutive rows (each sequence is one row long); "
+                        "MASE and the naive baselines need a previous value in the same sequence: give "
+                        "each sequence at least 2 rows, or set `group_column` to a column that gathers "
+                        "several rows per sequence")
 
 
 def target_mask(starts: np.ndarray, lengths: Optional[np.ndarray], off: Tuple[int, int], n: int) -> np.ndarray:

@@ -1,4 +1,10 @@
-"""Baselines on a Prepared: fitted on the training part, scored on the network's targets.
+"""Baselines on a Prepared: fitted on the parts before the scored one, scored on the network's targets.
+
+Validation scores come from baselines fitted on the training part; test
+scores from baselines fitted on training + validation, which is all the
+data before the test part (the network sees validation only to choose its
+epoch). So a fixed train/test split, such as an archive's, scores the
+nearest-neighbour baseline on the whole given training set.
 
 ``baseline_predictions(prepared, split)`` returns, per baseline name, the
 predictions for exactly the targets of that split (``Prepared.target_rows``):
@@ -84,13 +90,29 @@ class Fitted(NamedTuple):
     freq: Optional[np.ndarray]  # (C,) training class frequencies (classification) or None
     linear: Optional[core.LinearAR]  # regression only
     segments: np.ndarray  # (R,) sequence number of every row
+    parts: tuple = ("train",)  # the parts fitted on
 
 
-def training_rows(prepared) -> np.ndarray:
-    """(K,) sorted row numbers of the training part: every row a training window covers."""
-    s = prepared.starts["train"]
+def parts_before(split: str) -> tuple:
+    """The parts a baseline scored on `split` is fitted on: every part before it."""
+    return ("train", "val") if split == "test" else ("train",)
+
+
+def _starts(prepared, parts) -> np.ndarray:
+    return np.concatenate([prepared.starts[q] for q in parts])
+
+
+def _lengths(prepared, parts):
+    if prepared.lengths[parts[0]] is None:
+        return None
+    return np.concatenate([prepared.lengths[q] for q in parts])
+
+
+def training_rows(prepared, parts=("train",)) -> np.ndarray:
+    """(K,) sorted row numbers of the training part (or `parts`): every row their windows cover."""
+    s = _starts(prepared, parts)
     if prepared.full:
-        end = s + prepared.lengths["train"]
+        end = s + _lengths(prepared, parts)
     else:
         end = s + prepared.window + prepared.horizon  # inputs and every target
     cover = np.zeros(len(prepared.targets) + 1, dtype=np.int64)
@@ -123,25 +145,37 @@ def _inputs(prepared, split) -> _Gather:
     return _Gather(p.inputs, p.starts[split], p.window, 0, p.lengths[split], right=p.full)
 
 
-def _linear_targets(prepared):
+def _linear_targets(prepared, parts):
     p = prepared
-    s = p.starts["train"]
     if p.full or p.config.mode == "many-to-one":
-        return p.targets[p.target_rows("train")]  # (N, O)
-    return _Gather(p.targets, s, p.window, offset=p.horizon)  # (N, T, O)
+        return np.concatenate([p.targets[p.target_rows(q)] for q in parts])  # (N, O)
+    return _Gather(p.targets, _starts(p, parts), p.window, offset=p.horizon)  # (N, T, O)
 
 
-def fit_baselines(prepared, *, lam: float = core.RIDGE) -> Fitted:
-    """Fit every baseline of this task on the training part of `prepared`."""
+def fit_baselines(prepared, *, lam: float = core.RIDGE, parts=("train",)) -> Fitted:
+    """Fit every baseline of this task on the windows of `parts` of `prepared`.
+
+    Args:
+        prepared: a Prepared.
+        lam: ridge of the linear AR.
+        parts: ("train",) for validation scores; ("train", "val") for test scores
+            (``parts_before(split)``).
+    """
     p = prepared
+    parts = tuple(parts)
+    if not parts or any(q not in SPLITS for q in parts):
+        raise ValueError(f"`parts` (={parts!r}) must name parts among {SPLITS}")
+    parts = tuple(q for q in parts if len(p.starts[q]) > 0) or ("train",)
     seg = core.segments(p.groups, len(p.targets))
     if p.classes is None:
-        mean = p.targets[training_rows(p)].mean(axis=0, dtype=np.float64)  # (O,)
+        mean = p.targets[training_rows(p, parts)].mean(axis=0, dtype=np.float64)  # (O,)
+        inputs = _Gather(p.inputs, _starts(p, parts), p.window, 0, _lengths(p, parts), right=p.full)
         with _one_blas_thread():
-            linear = core.fit_linear_ar(_inputs(p, "train"), _linear_targets(p), lam=lam)
-        return Fitted(mean, None, linear, seg)
-    freq = core.class_frequencies(p.targets[p.target_rows("train")], len(p.classes))
-    return Fitted(None, freq, None, seg)
+            linear = core.fit_linear_ar(inputs, _linear_targets(p, parts), lam=lam)
+        return Fitted(mean, None, linear, seg, parts)
+    codes = np.concatenate([p.targets[p.target_rows(q)] for q in parts])
+    freq = core.class_frequencies(codes, len(p.classes))
+    return Fitted(None, freq, None, seg, parts)
 
 
 def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) -> dict:
@@ -150,8 +184,8 @@ def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) 
     Args:
         prepared: a Prepared.
         split: "train", "val" or "test".
-        fitted: from `fit_baselines(prepared)`; fitted here when None (pass it
-            to score several splits without refitting).
+        fitted: from `fit_baselines(prepared, parts=...)`; when None, fitted here
+            on the parts before `split` (``parts_before``: test on train + val).
     Returns:
         dict name -> array: regression (N, O) or (N, T, O) in original units;
         classification (N, C) or (N, T, C) probabilities.
@@ -159,7 +193,7 @@ def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) 
     if split not in SPLITS:
         raise ValueError(f"`split` (={split!r}) must be one of {SPLITS}")
     p = prepared
-    f = fit_baselines(p) if fitted is None else fitted
+    f = fit_baselines(p, parts=parts_before(split)) if fitted is None else fitted
     rows = p.target_rows(split)  # (N,) or (N, T)
     h = p.horizon
     if p.classes is None:
@@ -173,7 +207,9 @@ def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) 
     n_classes = len(p.classes)
     out = {"majority": np.broadcast_to(f.freq, rows.shape + (n_classes,)).copy()}
     if p.full:
-        x_train, y_train, _ = p.windows("train")  # zero-padded at the end
+        seen = [p.windows(q)[:2] for q in f.parts]  # zero-padded at the end to the longest
+        x_train = np.concatenate([x for x, _ in seen])
+        y_train = np.concatenate([y for _, y in seen])
         x, _, _ = p.windows(split)
         out["nearest_neighbour"] = core.nearest_neighbour(x_train, y_train, x, n_classes)
     else:
@@ -191,16 +227,17 @@ def score_baselines(prepared, splits=("val", "test"), fitted: Optional[Fitted] =
     """Metrics of every baseline: index model name, columns "<split>_<metric>".
 
     Regression: mae, rmse, mase, r2 (MASE scaled by `prepared_mase_scale`);
-    classification: accuracy, balanced_accuracy, log_loss.
+    classification: accuracy, balanced_accuracy, log_loss. Each split is scored
+    by baselines fitted on the parts before it (``parts_before``) unless
+    `fitted` is given.
     """
-    f = fit_baselines(prepared) if fitted is None else fitted
     scale = prepared_mase_scale(prepared) if prepared.classes is None else None
     table: dict = {}
     for split in splits:
         if len(prepared.starts[split]) == 0:
             continue
         y = truth(prepared, split)
-        for name, pred in baseline_predictions(prepared, split, f).items():
+        for name, pred in baseline_predictions(prepared, split, fitted).items():
             if scale is not None:
                 m = regression_metrics(y, pred, scale=scale, model=name, split=split)
             else:

@@ -14,7 +14,7 @@ from typing import Optional
 import numpy as np
 import pandas as pd
 
-from ..evaluation._baselines import baseline_predictions, fit_baselines, prepared_mase_scale
+from ..evaluation._baselines import baseline_predictions, fit_baselines, parts_before, prepared_mase_scale
 from ..data._config import Config
 from ..data._errors import DataError
 from ..data._prepare import prepare
@@ -86,7 +86,8 @@ def score(prepared, actual: np.ndarray, outputs: dict):
     regression = prepared.classes is None
     names = REGRESSION_METRICS if regression else CLASSIFICATION_METRICS
     scale = prepared_mase_scale(prepared) if regression else None
-    fitted = fit_baselines(prepared)
+    # baselines fitted on every part before the scored one (test: train + val)
+    fitted = {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
     table = {"rnn": {}}
     matrices = {}
     for split in SCORED:
@@ -94,7 +95,7 @@ def score(prepared, actual: np.ndarray, outputs: dict):
             continue
         y = _truth(prepared, actual, split)
         found = {"rnn": outputs[split]}
-        found.update(baseline_predictions(prepared, split, fitted))
+        found.update(baseline_predictions(prepared, split, fitted[split]))
         for model, pred in found.items():
             m = _scores(y, pred, prepared, scale, model, split, names)
             table.setdefault(model, {}).update({f"{split}_{k}": v for k, v in m.items()})
@@ -103,6 +104,35 @@ def score(prepared, actual: np.ndarray, outputs: dict):
     columns = [f"{s}_{m}" for s in SCORED for m in names]
     metrics = pd.DataFrame.from_dict(table, orient="index").reindex(columns=columns)
     return metrics.astype(np.float64).rename_axis("model"), matrices
+
+
+FAR_WORSE = 2.0  # network val RMSE this many times the best baseline's gets a note (common practice, no source)
+ACCURACY_SHORT = 0.2  # classification: val accuracy this far below the best baseline's gets one
+
+
+def fit_notes(metrics: pd.DataFrame, prepared) -> tuple:
+    """Sentences a reader must see beside the scores: a network far behind the best
+    baseline, a MASE that is undefined (constant training target)."""
+    notes = []
+    if "val_rmse" in metrics.columns:
+        rnn, others = metrics.loc["rnn", "val_rmse"], metrics["val_rmse"].drop("rnn").dropna()
+        if len(others) and np.isfinite(rnn) and rnn > FAR_WORSE * others.min():
+            name = others.idxmin()
+            notes.append(f"the network's val RMSE ({rnn:.4g}) is {rnn / others.min():.3g} times the best "
+                         f"baseline's ({name}, {others.min():.4g}): it is far worse than a baseline; try "
+                         "a lower `lr`, more `epochs` or another `window`")
+        scale = prepared_mase_scale(prepared)
+        if np.any(scale == 0):
+            notes.append("the target does not change between consecutive training rows (a constant "
+                         "training target): MASE, scaled by that in-sample naive error of 0, is "
+                         "undefined and reported as NaN")
+    if "val_accuracy" in metrics.columns:
+        rnn, others = metrics.loc["rnn", "val_accuracy"], metrics["val_accuracy"].drop("rnn").dropna()
+        if len(others) and np.isfinite(rnn) and rnn < others.max() - ACCURACY_SHORT:
+            notes.append(f"the network's val accuracy ({rnn:.3g}) is far below the best baseline's "
+                         f"({others.idxmax()}, {others.max():.3g}); try a lower `lr`, more `epochs` "
+                         "or more `hidden` units")
+    return tuple(notes)
 
 
 class FitResult:
@@ -122,12 +152,16 @@ class FitResult:
       prepared: the Prepared it was trained on (None when loaded without data).
       best_epoch: the epoch whose parameters these are (0: the initial ones).
       compiles, seconds: training programs compiled, wall time of training.
+      notes: sentences to read beside the scores (a network far worse than the
+        best baseline, an undefined MASE); the data's own notes are in
+        ``prepared.notes``.
     """
 
     def __init__(self, *, params, spec: DataSpec, status, history, metrics, confusion=None,
                  prepared=None, actual=None, best_epoch=0, compiles=0, seconds=0.0,
-                 diagnostics=None, outputs=None, labels=None):
+                 diagnostics=None, outputs=None, labels=None, notes=()):
         self.params = params
+        self.notes = tuple(notes)  # sentences about the scores (fit_notes) to read beside them
         self.spec = spec
         self.config = spec.config
         self.status = status
@@ -144,12 +178,19 @@ class FitResult:
         self._diagnostics = diagnostics
         self._lock = threading.Lock()
 
+    @property
+    def watched(self) -> str:
+        """What chose the kept epoch and early stopping: "val_loss" or "val_accuracy" (config.watch)."""
+        metric = self.config.watch == "metric" and self.config.task == "classification"
+        return "val_accuracy" if metric else "val_loss"
+
     def __repr__(self) -> str:
         task = self.config.task
         col = "val_rmse" if task == "regression" else "val_accuracy"
         rnn = self.metrics[col].get("rnn", float("nan")) if col in self.metrics else float("nan")
         return (f"FitResult({task}, hidden={self.config.hidden}, activation={self.config.activation!r}, "
-                f"status={self.status!r}, epochs={len(self.history)}, {col}={rnn:.4g})")
+                f"status={self.status!r}, epochs={len(self.history)}, kept epoch {self.best_epoch} "
+                f"by {self.watched}, {col}={rnn:.4g})")
 
     @property
     def diagnostics(self):
@@ -264,7 +305,8 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
                      confusion=matrices, prepared=prepared, actual=actual,
                      best_epoch=outcome.best_epoch, compiles=outcome.compiles,
                      seconds=outcome.seconds, outputs=outputs,
-                     labels=zoned_labels(df, prepared.rows, cfg.time_column))
+                     labels=zoned_labels(df, prepared.rows, cfg.time_column),
+                     notes=fit_notes(metrics, prepared))
 
 
 def load_fit(path, df=None):
@@ -298,4 +340,5 @@ def load_fit(path, df=None):
     return FitResult(params=parts["params"], spec=spec, status=parts["status"], history=parts["history"],
                      metrics=parts["metrics"], confusion=parts["confusion"], prepared=prepared,
                      actual=actual, best_epoch=parts["best_epoch"], compiles=parts["compiles"],
-                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels)
+                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels,
+                     notes=parts.get("notes", ()))

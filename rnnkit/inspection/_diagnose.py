@@ -194,6 +194,14 @@ class Diagnostics:
         g = self.gradient_through_time
         return float(g[0] / g[-1]) if g[-1] > 0 else float("nan")
 
+    def __repr__(self) -> str:
+        T, H = np.shape(self.window_state)
+        return (f"Diagnostics({self.split}, {self.activation}, T={T}, H={H}, "
+                f"spectral_radius={self.spectral_radius:.3g}, "
+                f"gradient_ratio_first_to_last={self.gradient_ratio:.3g}, "
+                f"mean_saturation={float(np.mean(self.saturation)):.3g}, "
+                f"{len(self.val_states)} windows; .summary() for the headline numbers)")
+
     def summary(self) -> pd.Series:
         """The headline numbers, one per line."""
         return pd.Series({

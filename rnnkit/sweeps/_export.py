@@ -26,6 +26,8 @@ import json
 import math
 import os
 import platform
+import re
+import stat
 import warnings
 from pathlib import Path
 from typing import Any, Optional, Union
@@ -115,6 +117,14 @@ def used_columns(df: pd.DataFrame, config: Optional[Config]) -> list:
             require_column(df, getattr(config, field), field)
     targets, feats = resolve_columns(df, config, special)
     return sorted(set(targets) | set(feats) | set(special))
+
+
+def resolved_columns(df: pd.DataFrame, config: Config) -> Config:
+    """`config` with the target and input columns it uses on `df` written out (a target or
+    features left to be chosen would choose other columns on a reordered frame)."""
+    special = [c for c in (config.time_column, config.group_column, config.split_column) if c]
+    targets, feats = resolve_columns(df, config, special)
+    return config.replace(target=targets[0] if len(targets) == 1 else tuple(targets), features=tuple(feats))
 
 
 def _missing(v) -> bool:
@@ -223,7 +233,9 @@ def document(config: Config, *, metric=None, metrics=None, data=None, notes=None
         config: the Config.
         metric: ``(name, value)`` or ``{"name", "value"}``: the score it was chosen by.
         metrics: ``{name: value}`` of every score.
-        data: a DataFrame (its fingerprint is computed with `config`) or a ready data dict.
+        data: a DataFrame (its fingerprint is computed with `config`, and the
+            config's target and features are written out as resolved on it) or a
+            ready data dict.
         notes: free text.
         scoring: how the metric was measured: {"folds": 1, "scheme": "split", ...} or a
             backtest's {"folds": K, "scheme": "rolling origin" | "sequences", "window",
@@ -233,6 +245,8 @@ def document(config: Config, *, metric=None, metrics=None, data=None, notes=None
     """
     if not isinstance(config, Config):
         raise TypeError(f"`config` must be an rnnkit.Config, got {type(config).__name__}")
+    if isinstance(data, pd.DataFrame):
+        config = resolved_columns(data, config)
     doc = {"format": FORMAT, "version": VERSION, "config": config.to_dict()}
     if metric is not None:
         name, value = (metric["name"], metric["value"]) if isinstance(metric, dict) else metric
@@ -266,6 +280,59 @@ def _no_constant(name):
     raise ValueError(f"{name} is not valid JSON; write a finite number or null")
 
 
+MAX_JSON_BYTES = 16 * 2**20  # a document or sweep file larger than this is refused
+MAX_JSON_DEPTH = 32  # nesting of objects and arrays (our documents use 3)
+_JSON_STRING = re.compile(rb'"(?:[^"\\]|\\.)*"')
+
+
+def _no_duplicates(pairs):
+    seen = {}
+    for k, v in pairs:
+        if k in seen:
+            raise ValueError(f"the key {k!r} appears twice in one object; keep one")
+        seen[k] = v
+    return seen
+
+
+def read_json_file(path, what: str = "document") -> Any:
+    """Parse a JSON file strictly; every refusal is a ValueError naming `what` and the file.
+
+    Refused: anything but a regular file (a folder, a device, a link to one), more
+    than MAX_JSON_BYTES, bytes that are not UTF-8, nesting deeper than
+    MAX_JSON_DEPTH, a key repeated in one object, NaN/Infinity, and text that is
+    not JSON.
+    """
+    where = f"{what} {str(path)!r}"
+    try:
+        st = os.stat(path)  # follows links: a link to /dev/zero is a device here
+    except OSError as e:
+        raise ValueError(f"{where}: cannot be read ({e.strerror})") from None
+    if not stat.S_ISREG(st.st_mode):
+        raise ValueError(f"{where} is not a regular file; give the path of a JSON file")
+    with open(path, "rb") as f:
+        raw = f.read(MAX_JSON_BYTES + 1)
+    if len(raw) > MAX_JSON_BYTES:
+        raise ValueError(f"{where} is larger than {MAX_JSON_BYTES} bytes; this is not a document "
+                         "rnnkit writes")
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        raise ValueError(f"{where} is not UTF-8 text (byte {e.start}); save it as UTF-8") from None
+    # Depth of brackets outside strings, measured before parsing (the parser recurses).
+    brackets = np.frombuffer(_JSON_STRING.sub(b'""', raw), dtype=np.uint8)
+    step = np.isin(brackets, (ord("["), ord("{"))).astype(np.int64) - np.isin(
+        brackets, (ord("]"), ord("}")))
+    if len(step) and np.cumsum(step).max() > MAX_JSON_DEPTH:
+        raise ValueError(f"{where} nests objects/arrays deeper than {MAX_JSON_DEPTH} levels")
+    try:
+        return json.loads(text, parse_constant=_no_constant, object_pairs_hook=_no_duplicates)
+    except json.JSONDecodeError as e:
+        raise ValueError(f"{where}: not JSON (line {e.lineno}: {e.msg}); give a file written by "
+                         "rnnkit.save_config") from None
+    except (ValueError, RecursionError) as e:
+        raise ValueError(f"{where}: {e}") from None
+
+
 def read_document(source) -> dict:
     """Read and check a document; a bare config object comes back wrapped in an envelope.
 
@@ -279,12 +346,7 @@ def read_document(source) -> dict:
         doc = source
     elif isinstance(source, (str, os.PathLike)):
         where = str(source)
-        try:
-            with open(source, encoding="utf-8") as f:
-                doc = json.load(f, parse_constant=_no_constant)
-        except json.JSONDecodeError as e:
-            raise ValueError(f"{where}: not JSON ({e}); give a file written by "
-                             "rnnkit.save_config") from None
+        doc = read_json_file(source)
     else:
         raise TypeError(f"`path` must be a file path or a dict, got {type(source).__name__}")
     if isinstance(doc, dict) and not {"format", "version", "config"} & set(doc):

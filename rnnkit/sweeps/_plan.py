@@ -18,7 +18,13 @@ import numpy as np
 from ..data._config import Config, config_fields
 
 STRATEGIES = ("grid", "random")
-_RANGE_KEYS = {"low", "high", "log", "int"}
+# A range for strategy="random", in our own words:
+#   {"from": 1e-4, "to": 0.1, "spacing": "log"}   draws spread evenly on a log scale
+#   {"from": 8, "to": 64, "whole": true}          whole numbers from 8 to 64, both included
+_RANGE_KEYS = {"from", "to", "spacing", "whole"}
+SPACINGS = ("even", "log")
+MAX_SEEDS = 1000  # seeds per setting (a count or a list)
+MAX_SAMPLES = 100_000  # random settings to draw
 
 
 def _plain(v):
@@ -27,25 +33,29 @@ def _plain(v):
 
 
 def _check_range(name: str, r: dict) -> dict:
+    example = "{'from': 1e-4, 'to': 0.1, 'spacing': 'log'}"
     unknown = sorted(set(r) - _RANGE_KEYS)
-    if unknown or "low" not in r or "high" not in r:
-        raise ValueError(f"space[{name!r}] (={r!r}) is not a range: a range has keys 'low', 'high' "
-                         "and optionally 'log' and 'int', e.g. "
-                         "{'low': 1e-4, 'high': 1e-1, 'log': True}")
-    lo, hi, log, whole = _plain(r["low"]), _plain(r["high"]), r.get("log", False), r.get("int", False)
-    for k, v in (("low", lo), ("high", hi)):
+    if unknown or "from" not in r or "to" not in r:
+        raise ValueError(f"space[{name!r}] (={r!r}) is not a range: a range has keys 'from' and 'to', "
+                         f"and optionally 'spacing' ({' or '.join(repr(x) for x in SPACINGS)}) and "
+                         f"'whole' (true for whole numbers), e.g. {example}")
+    lo, hi = _plain(r["from"]), _plain(r["to"])
+    spacing, whole = r.get("spacing", "even"), r.get("whole", False)
+    for k, v in (("from", lo), ("to", hi)):
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
             raise ValueError(f"space[{name!r}][{k!r}] (={v!r}) must be a finite number")
-    if not isinstance(log, bool) or not isinstance(whole, bool):
-        raise ValueError(f"space[{name!r}]: 'log' and 'int' must be true or false")
+    if spacing not in SPACINGS:
+        raise ValueError(f"space[{name!r}]['spacing'] (={spacing!r}) must be one of {SPACINGS}")
+    if not isinstance(whole, bool):
+        raise ValueError(f"space[{name!r}]['whole'] (={whole!r}) must be true or false")
     if not lo < hi:
-        raise ValueError(f"space[{name!r}]: 'low' (={lo!r}) must be below 'high' (={hi!r})")
-    if log and lo <= 0:
-        raise ValueError(f"space[{name!r}]: a log range needs 'low' > 0 (got {lo!r})")
+        raise ValueError(f"space[{name!r}]: 'from' (={lo!r}) must be below 'to' (={hi!r})")
+    if spacing == "log" and lo <= 0:
+        raise ValueError(f"space[{name!r}]: spacing 'log' needs 'from' > 0 (got {lo!r})")
     if whole and (lo != int(lo) or hi != int(hi)):
-        raise ValueError(f"space[{name!r}]: an int range needs whole 'low' and 'high' "
+        raise ValueError(f"space[{name!r}]: a whole-number range needs whole 'from' and 'to' "
                          f"(got {lo!r}, {hi!r})")
-    return {"low": lo, "high": hi, "log": log, "int": whole}
+    return {"from": lo, "to": hi, "log": spacing == "log", "whole": whole}
 
 
 def check_space(space, strategy: str) -> Dict[str, Union[list, dict]]:
@@ -78,11 +88,13 @@ def check_space(space, strategy: str) -> Dict[str, Union[list, dict]]:
 def seed_list(config: Config, seeds) -> List[int]:
     """`seeds` as a list: a count n gives config.seed + 0..n-1; a list is taken as given."""
     if isinstance(seeds, (int, np.integer)) and not isinstance(seeds, bool):
-        if seeds < 1:
-            raise ValueError(f"`seeds` (={seeds!r}) must be >= 1 (the number of seeds per setting) "
-                             "or a list of seeds")
+        if not 1 <= seeds <= MAX_SEEDS:
+            raise ValueError(f"`seeds` (={seeds!r}) must be from 1 to {MAX_SEEDS} (the number of seeds "
+                             "per setting) or a list of seeds")
         return [config.seed + k for k in range(int(seeds))]
     if isinstance(seeds, (list, tuple, np.ndarray, range)) and len(seeds) > 0:
+        if len(seeds) > MAX_SEEDS:
+            raise ValueError(f"`seeds` lists {len(seeds)} seeds; at most {MAX_SEEDS} are allowed")
         out = [_plain(s) for s in seeds]
         if len(set(out)) != len(out):
             raise ValueError(f"`seeds` (={out!r}) repeats a seed; give distinct seeds")
@@ -93,11 +105,11 @@ def seed_list(config: Config, seeds) -> List[int]:
 def _draw(rng: np.random.Generator, values):
     if isinstance(values, list):
         return values[int(rng.integers(len(values)))]
-    lo, hi = values["low"], values["high"]
+    lo, hi = values["from"], values["to"]
     if values["log"]:
         x = math.exp(rng.uniform(math.log(lo), math.log(hi)))
-        return int(min(max(round(x), lo), hi)) if values["int"] else float(min(max(x, lo), hi))
-    if values["int"]:
+        return int(min(max(round(x), lo), hi)) if values["whole"] else float(min(max(x, lo), hi))
+    if values["whole"]:
         return int(rng.integers(int(lo), int(hi) + 1))
     return float(rng.uniform(lo, hi))
 
@@ -110,9 +122,10 @@ def settings(space: dict, strategy: str, n_samples: Optional[int], seed: int) ->
             raise ValueError(f"`n_samples` (={n_samples!r}) is for strategy='random'; the grid "
                              "runs every combination (leave n_samples None)")
         return [dict(zip(names, combo)) for combo in itertools.product(*space.values())]
-    if isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer)) or n_samples < 1:
-        raise ValueError(f"`n_samples` (={n_samples!r}) must be a whole number >= 1 with "
-                         "strategy='random'")
+    if (isinstance(n_samples, bool) or not isinstance(n_samples, (int, np.integer))
+            or not 1 <= n_samples <= MAX_SAMPLES):
+        raise ValueError(f"`n_samples` (={n_samples!r}) must be a whole number from 1 to {MAX_SAMPLES} "
+                         "with strategy='random'")
     rng = np.random.default_rng(seed)
     if all(isinstance(v, list) for v in space.values()):
         # Only lists: draw distinct grid points, so no setting is run twice.
@@ -133,7 +146,8 @@ def plan(config: Config, space: dict, strategy: str = "grid", n_samples: Optiona
 
     Args:
         config: the base Config; fields not in `space` keep its values.
-        space: Config field -> list of values (random also takes range dicts).
+        space: Config field -> list of values (random also takes ranges:
+            {"from": a, "to": b, "spacing": "even"|"log", "whole": bool}).
         strategy: "grid" (every combination) or "random" (`n_samples` draws).
         n_samples: number of settings to draw (random only).
         seeds: seeds per setting: a count n (seeds config.seed .. config.seed+n-1)

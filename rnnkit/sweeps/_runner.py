@@ -14,7 +14,9 @@ import contextlib
 import datetime as _dt
 import multiprocessing
 import os
+import re
 import shutil
+import signal
 import tempfile
 import threading
 import time
@@ -30,7 +32,7 @@ from ..data._errors import DataError
 from ._export import fingerprint
 from ..fitting._backtest import fold_frame, plan_folds
 from ..fitting._fit import fit
-from ._store import open_store, run_key
+from ._store import open_store, process_alive, run_key
 from ..training._train import shape_plan
 
 # One XLA / BLAS thread per worker process, in its environment from the start (jax
@@ -48,6 +50,20 @@ WORKER_ENV = {
 TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "optimizer", "lr",
                    "weight_decay", "epochs", "batch_size", "clip", "patience", "seed")
 _ENV_LOCK = threading.Lock()
+MAX_WORKERS = 1024  # worker processes or runs in flight
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (its CPU affinity where the system has one)."""
+    if hasattr(os, "sched_getaffinity"):
+        return max(len(os.sched_getaffinity(0)), 1)
+    return max(os.cpu_count() or 1, 1)
+
+
+def pool_size(workers: int, runs: int) -> int:
+    """Processes our own pool starts: `workers`, but no more than the runs and the usable cores
+    (each worker binds itself to one core, so more would only queue and cost memory)."""
+    return max(1, min(int(workers), int(runs), usable_cores()))
 
 
 def worker_env(base: Optional[dict] = None) -> dict:
@@ -90,6 +106,10 @@ def _worker_init(counter=None) -> None:
     # A no-op when the pool spawned us under _spawn_env; keeps later imports single-threaded otherwise.
     for k, v in WORKER_ENV.items():
         os.environ.setdefault(k, v)
+    # Ctrl-C in a terminal reaches every process of the group: the sweep's own process
+    # handles it (and ends its workers); a worker that also raised would leave the pool
+    # half-broken, with the parent waiting on it.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     if counter is None or not hasattr(os, "sched_setaffinity"):
         return
     with counter.get_lock():
@@ -111,10 +131,44 @@ def _shared_compile_cache() -> tuple:
     """
     if os.environ.get("JAX_COMPILATION_CACHE_DIR"):
         return {}, None
-    path = tempfile.mkdtemp(prefix="rnnkit-programs-")
+    remove_stale_caches()
+    path = tempfile.mkdtemp(prefix=f"{CACHE_PREFIX}{os.getpid()}-")
     return {"JAX_COMPILATION_CACHE_DIR": path,
             "JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS": "0",
             "JAX_PERSISTENT_CACHE_MIN_ENTRY_SIZE_BYTES": "0"}, path
+
+
+CACHE_PREFIX = "rnnkit-programs-"  # + "<pid of the sweep's process>-<random>"
+
+
+def remove_stale_caches(folder: Optional[str] = None) -> list:
+    """Remove compilation-cache folders of sweeps whose process is gone (killed before it could
+    clean up); returns the paths removed. Folders of live processes are left alone."""
+    folder = tempfile.gettempdir() if folder is None else folder
+    removed = []
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return removed
+    for name in names:
+        m = re.fullmatch(re.escape(CACHE_PREFIX) + r"(\d+)-\w+", name)
+        if m is None or process_alive(int(m.group(1))):
+            continue
+        path = os.path.join(folder, name)
+        if os.path.isdir(path) and not os.path.islink(path):
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(path)
+    return removed
+
+
+def _end_workers(pool: cf.ProcessPoolExecutor) -> None:
+    """Terminate our pool's processes at once (Ctrl-C or an error): runs in flight are lost,
+    finished ones are stored already, and nothing is left waiting on a worker."""
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        if proc.is_alive():
+            proc.terminate()
+    for proc in list((getattr(pool, "_processes", None) or {}).values()):
+        proc.join(timeout=5)
 
 
 def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
@@ -160,7 +214,7 @@ def flat_metrics(metrics: pd.DataFrame) -> Dict[str, float]:
 
 def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
             x64: Optional[bool] = None) -> dict:
-    """Fit one Config and return its outcome; a DataError becomes a "failed" outcome.
+    """Fit one Config and return its outcome; any exception becomes a "failed" outcome.
 
     Args:
         df: the frame.
@@ -176,12 +230,22 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
     t0 = time.perf_counter()
     try:
         res = fit(df, config, progress=False, shapes=shapes)
-    except DataError as e:
-        return {"status": "failed", "epochs": 0, "seconds": time.perf_counter() - t0,
-                "compiles": 0, "metrics": {}, "message": str(e)}
+    except Exception as e:  # noqa: BLE001 - a failure is one run's result, never the sweep's end
+        return failed_outcome(e, time.perf_counter() - t0)
     return {"status": res.status, "epochs": int(len(res.history)),
             "seconds": time.perf_counter() - t0, "compiles": int(res.compiles),
             "metrics": flat_metrics(res.metrics), "message": ""}
+
+
+def failure_message(e: BaseException) -> str:
+    """The message of a failed run: a DataError's own text, else the exception's type and text."""
+    return str(e) if isinstance(e, DataError) else f"{type(e).__name__}: {e}"
+
+
+def failed_outcome(e: BaseException, seconds: float = 0.0) -> dict:
+    """The outcome dict of a run that raised `e`."""
+    return {"status": "failed", "epochs": 0, "seconds": float(seconds), "compiles": 0,
+            "metrics": {}, "message": failure_message(e)}
 
 
 def remote_run(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: bool,
@@ -209,7 +273,7 @@ def _data_key(config: Config) -> Config:
 
 def plan_shapes(df: pd.DataFrame, configs: Sequence[Config], folds: Optional[dict] = None,
                 units: Optional[Sequence[tuple]] = None):
-    """Common padded shapes for the runs, and the DataError message of runs that cannot be prepared.
+    """Common padded shapes for the runs, and the message of runs that cannot be prepared.
 
     Args:
         df: the frame.
@@ -246,14 +310,15 @@ def plan_shapes(df: pd.DataFrame, configs: Sequence[Config], folds: Optional[dic
         if key not in prepared:
             try:
                 prepared[key] = prepare(df, c) if frame is None else prepare(frame[0], frame[1])
-            except DataError as e:
-                prepared[key] = DataError(f"fold {k}: {e}" if k is not None else str(e))
-        if isinstance(prepared[key], DataError):
-            failed[j] = str(prepared[key])
+            except Exception as e:  # noqa: BLE001 - recorded as the run's failure
+                prepared[key] = e
+        if isinstance(prepared[key], Exception):
+            msg = failure_message(prepared[key])
+            failed[j] = f"fold {k}: {msg}" if k is not None else msg
     # Runs can share a program only when they agree on everything but the window geometry.
     families: Dict[tuple, list] = {}
     for key, p in prepared.items():
-        if not isinstance(p, DataError):
+        if not isinstance(p, Exception):
             k = key[0]
             families.setdefault((k.task, k.mode, k.dtype, p.n_inputs, p.n_outputs), []).append(key)
     plans = {}
@@ -285,7 +350,7 @@ def _fingerprints(df, configs) -> List[str]:
         if cols not in cache:
             try:
                 cache[cols] = fingerprint(df, c)
-            except DataError:
+            except Exception:  # noqa: BLE001 - the run will fail and say why
                 cache[cols] = fingerprint(df, None)  # the run will fail; key it by the whole frame
         out.append(cache[cols])
     return out
@@ -346,6 +411,12 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run, folds=No
         if on_run is not None:
             on_run(rec)
 
+    def stopped():
+        return stop is not None and stop.is_set()
+
+    def claim(i):  # False: another process runs it (or has stored it)
+        return store.claim(keys[i])
+
     try:
         if todo:
             shapes, failed, frames = plan_shapes(df, configs, folds, [units[u] for u in todo])
@@ -359,35 +430,65 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run, folds=No
                     i = units[u][0]
                     jobs[u] = (df, configs[i]) if frames[j] is None else frames[j]
             x64 = bool(jax.config.jax_enable_x64)
-            if executor is None and workers == 1:
-                for u, s in tasks:
-                    if stop is not None and stop.is_set():
-                        break
-                    finish(u, run_one(*jobs[u], s))
-            else:
-                _run_parallel(jobs, [configs[i] for i, _ in units], tasks, x64, workers, executor,
-                              stop, finish)
+            while tasks and not stopped():
+                if executor is None and workers == 1:
+                    skipped = []
+                    for u, s in tasks:
+                        if stopped():
+                            break
+                        if not claim(u):
+                            skipped.append((u, s))
+                            continue
+                        finish(u, run_one(*jobs[u], s))
+                else:
+                    skipped = _run_parallel(jobs, [configs[i] for i, _ in units], tasks, x64, workers,
+                                            executor, stop, finish, claim)
+                tasks = _wait_for_others(store, keys, skipped, stopped, bar)
     finally:
+        store.release()
         bar.close()
     got = store.get(keys)
     return [got[k] for k in dict.fromkeys(keys) if k in got]
 
 
-def _run_parallel(jobs, configs, tasks, x64, workers, executor, stop, finish) -> None:
+def _wait_for_others(store, keys, skipped, stopped, bar, poll: float = 0.5) -> list:
+    """Wait while other processes run the `skipped` runs they claimed; return those to run here
+    (not stored, and their claim gone: the other process stopped or died), or [] when all are stored."""
+    while skipped and not stopped():
+        done = store.keys()
+        left = [t for t in skipped if keys[t[0]] not in done]
+        bar.update(len(skipped) - len(left))
+        skipped = left
+        busy = store.claimed_elsewhere(keys[i] for i, _ in left)
+        if any(keys[i] not in busy for i, _ in left):
+            return left
+        if left:
+            time.sleep(poll)
+    return []
+
+
+def _run_parallel(jobs, configs, tasks, x64, workers, executor, stop, finish, claim) -> list:
     """Submit runs to a pool (ours) or the caller's executor; store each result as it comes.
 
-    jobs: unit -> (frame, Config) to fit; configs: unit -> Config (for the program groups)."""
+    jobs: unit -> (frame, Config) to fit; configs: unit -> Config (for the program groups).
+    Returns the tasks not run because `claim` said another process runs them."""
     own = executor is None
+    if own:
+        workers = pool_size(workers, len(tasks))
     pool = process_pool(workers) if own else executor
     cache_env, cache_dir = _shared_compile_cache() if own else ({}, None)
     limit = workers if (own or workers > 1) else max(len(tasks), 1)
     pending = interleave(tasks, configs)
     running: Dict[cf.Future, int] = {}
+    skipped = []
     ok = False
     try:
         while pending or running:
             while pending and len(running) < limit and not (stop is not None and stop.is_set()):
                 i, s = pending.pop(0)
+                if not claim(i):
+                    skipped.append((i, s))
+                    continue
                 with _spawn_env(cache_env) if own else contextlib.nullcontext():
                     frame, config = jobs[i]
                     running[pool.submit(remote_run, frame, config, s, x64, os.getpid())] = i
@@ -396,7 +497,11 @@ def _run_parallel(jobs, configs, tasks, x64, workers, executor, stop, finish) ->
             finished, _ = cf.wait(running, timeout=0.5, return_when=cf.FIRST_COMPLETED)
             for f in finished:
                 i = running.pop(f)
-                finish(i, f.result())  # a worker's unexpected error ends the sweep here
+                try:
+                    outcome = f.result()
+                except Exception as e:  # noqa: BLE001 - a lost worker or a task that could not be sent
+                    outcome = failed_outcome(e)
+                finish(i, outcome)
             if stop is not None and stop.is_set():
                 for f in [f for f in running if f.cancel()]:
                     running.pop(f)
@@ -406,7 +511,10 @@ def _run_parallel(jobs, configs, tasks, x64, workers, executor, stop, finish) ->
         if not ok:
             for f in running:
                 f.cancel()
+            if own:
+                _end_workers(pool)
         if own:
             pool.shutdown(wait=ok, cancel_futures=True)
         if cache_dir is not None:
             shutil.rmtree(cache_dir, ignore_errors=True)
+    return skipped

@@ -7,6 +7,13 @@ before the sweep starts the next run, so a killed sweep loses at most the run
 in flight, and a second sweep over the same store runs only the missing keys.
 Only the process that opened the store writes to it; parallel workers send
 their results back to it.
+
+Our files carry SQLite's application_id (``APPLICATION_ID``), so a database
+that is not a run store is refused before anything is written to it. Two
+sweeps (two processes) on one store share the work: a run is *claimed*
+(a row in ``claims``) before it starts, and a run claimed by a live process
+is left to it. A claim dies with its process (same host: the process is
+gone) or after ``LEASE`` seconds.
 """
 from __future__ import annotations
 
@@ -15,8 +22,11 @@ import hashlib
 import json
 import math
 import os
+import socket
 import sqlite3
 import threading
+import time
+import uuid
 from pathlib import Path
 from typing import Dict, Iterable, List, Optional, Union
 
@@ -25,6 +35,8 @@ import pandas as pd
 from ..data._config import Config
 
 LAYOUT = 2  # bump when the table below changes (2: the fold column; layout-1 files gain it on opening)
+APPLICATION_ID = 0x524E4E4B  # "RNNK": PRAGMA application_id of every run store we write
+LEASE = 24 * 3600.0  # seconds after which a claim of a process on another host is taken over
 _TABLE = """
 CREATE TABLE IF NOT EXISTS runs (
     key TEXT PRIMARY KEY,       -- run_key(config, fingerprint, fold)
@@ -39,6 +51,15 @@ CREATE TABLE IF NOT EXISTS runs (
     finished TEXT NOT NULL,     -- ISO-8601 UTC
     fold TEXT NOT NULL DEFAULT ''  -- JSON {"fold": k, "folds": K, "scheme": ...} of a backtest run; '' otherwise
 )"""
+_CLAIMS = """
+CREATE TABLE IF NOT EXISTS claims (
+    key TEXT PRIMARY KEY,  -- run_key of a run some process is running now
+    owner TEXT NOT NULL,   -- that process's RunStore (random id)
+    host TEXT NOT NULL,    -- its host name
+    pid INTEGER NOT NULL,  -- its process id
+    at REAL NOT NULL       -- when it claimed the run (seconds since the epoch)
+)"""
+_OURS = {"runs", "layout", "claims"}
 FIELDS = ("key", "config", "fingerprint", "status", "epochs", "seconds", "compiles",
           "metrics", "message", "finished", "fold")
 
@@ -87,31 +108,86 @@ class RunStore:
             if self.path.is_dir():
                 raise ValueError(f"`store` ({str(self.path)!r}) is a folder; give a file name, "
                                  f"for example {str(self.path / 'sweep.sqlite')!r}")
-            self.path.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+            except OSError as e:
+                raise ValueError(f"`store` ({str(self.path)!r}): its folder cannot be made ({e.strerror}); "
+                                 "choose a writable folder") from None
         # One connection, used under a lock, so a sweep may run in a background thread.
         self._lock = threading.Lock()
-        self._db = sqlite3.connect(":memory:" if self.path is None else str(self.path),
-                                   check_same_thread=False, timeout=30.0)
+        self._owner = uuid.uuid4().hex
+        where = "an in-memory store" if self.path is None else repr(str(self.path))
         try:
-            with self._lock, self._db:
-                if self.path is not None:
-                    self._db.execute("PRAGMA journal_mode=WAL")
-                self._db.execute("PRAGMA synchronous=FULL")
-                self._db.execute(_TABLE)
-                self._db.execute("CREATE TABLE IF NOT EXISTS layout (version INTEGER NOT NULL)")
-                row = self._db.execute("SELECT version FROM layout").fetchone()
-                if row is None:
-                    self._db.execute("INSERT INTO layout VALUES (?)", (LAYOUT,))
-                elif row[0] == 1:  # a store of plain runs: add the fold column, keep every row
-                    self._db.execute("ALTER TABLE runs ADD COLUMN fold TEXT NOT NULL DEFAULT ''")
-                    self._db.execute("UPDATE layout SET version = ?", (LAYOUT,))
-                elif row[0] != LAYOUT:
-                    raise ValueError(f"`store` {str(self.path)!r} has layout {row[0]}, this rnnkit "
-                                     f"writes layout {LAYOUT}; use a new file for this sweep")
+            self._db = sqlite3.connect(":memory:" if self.path is None else str(self.path),
+                                       check_same_thread=False, timeout=30.0)
+        except sqlite3.Error as e:
+            raise ValueError(f"`store` {where} cannot be opened ({e}); choose a writable folder") from None
+        try:
+            with self._lock:
+                self._check_ours(where)  # before anything is written to the file
+                self._check_writable(where)
+                with self._db:
+                    if self.path is not None:
+                        self._db.execute("PRAGMA journal_mode=WAL")
+                    self._db.execute("PRAGMA synchronous=FULL")
+                    self._db.execute(f"PRAGMA application_id={APPLICATION_ID}")
+                    self._db.execute(_TABLE)
+                    self._db.execute(_CLAIMS)
+                    self._db.execute("CREATE TABLE IF NOT EXISTS layout (version INTEGER NOT NULL)")
+                    row = self._db.execute("SELECT version FROM layout").fetchone()
+                    if row is None:
+                        self._db.execute("INSERT INTO layout VALUES (?)", (LAYOUT,))
+                    elif row[0] == 1:  # a store of plain runs: add the fold column, keep every row
+                        columns = {r[1] for r in self._db.execute("PRAGMA table_info(runs)")}
+                        if "fold" not in columns:
+                            self._db.execute("ALTER TABLE runs ADD COLUMN fold TEXT NOT NULL DEFAULT ''")
+                        self._db.execute("UPDATE layout SET version = ?", (LAYOUT,))
         except sqlite3.DatabaseError as e:
             self._db.close()
-            raise ValueError(f"`store` {str(self.path)!r} is not an rnnkit run store ({e}); "
-                             "give a new file name") from None
+            raise ValueError(f"`store` {where} cannot be used as an rnnkit run store ({e}); "
+                             "give a new file name in a writable folder") from None
+        except BaseException:
+            self._db.close()
+            raise
+
+    def _check_ours(self, where: str) -> None:
+        """Refuse a database that is not a run store of this layout, reading only."""
+        try:
+            app = self._db.execute("PRAGMA application_id").fetchone()[0]
+            tables = {n for (n,) in self._db.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        except sqlite3.OperationalError as e:
+            raise ValueError(f"`store` {where} cannot be opened ({e}); choose a file in a folder "
+                             "you may write to") from None
+        except sqlite3.DatabaseError as e:
+            raise ValueError(f"`store` {where} is not an rnnkit run store ({e}); give a new file "
+                             "name") from None
+        # application_id 0 with only our tables: a store from before the id was written
+        if not tables and app == 0:
+            return  # a new (or empty) database
+        if app != APPLICATION_ID and not (app == 0 and tables and tables <= _OURS and "runs" in tables):
+            raise ValueError(f"`store` {where} is an SQLite database that is not an rnnkit run store "
+                             f"(application_id {app}, tables {sorted(tables)}); it was left unchanged: "
+                             "give a new file name")
+        if "layout" in tables:
+            row = self._db.execute("SELECT version FROM layout").fetchone()
+            if row is not None and row[0] not in (1, LAYOUT):  # layout 1 gains the fold column
+                raise ValueError(f"`store` {where} has layout {row[0]}, this rnnkit writes layout "
+                                 f"{LAYOUT}; use a new file for this sweep")
+
+    def _check_writable(self, where: str) -> None:
+        """Take SQLite's write lock once, so an unwritable file or folder is refused before any run."""
+        if self.path is None:
+            return
+        try:
+            self._db.execute("BEGIN IMMEDIATE")
+            self._db.execute("CREATE TABLE IF NOT EXISTS _rnnkit_write_probe (x)")
+            self._db.execute("DROP TABLE _rnnkit_write_probe")
+            self._db.rollback()
+        except sqlite3.OperationalError as e:
+            if self._db.in_transaction:
+                self._db.rollback()
+            raise ValueError(f"`store` {where} cannot be written ({e}); choose a file in a folder "
+                             "you may write to") from None
 
     # --- writing ---
     def put(self, record: dict) -> None:
@@ -129,6 +205,48 @@ class RunStore:
         with self._lock, self._db:  # the with-block commits before returning
             self._db.execute(f"INSERT OR REPLACE INTO runs ({', '.join(FIELDS)}) "
                              f"VALUES ({', '.join('?' * len(FIELDS))})", row)
+            self._db.execute("DELETE FROM claims WHERE key = ?", (record["key"],))
+
+    # --- sharing the work between processes ---
+    def claim(self, key: str) -> bool:
+        """Claim run `key` for this store's process: False when it is stored already or a live
+        process has claimed it (a claim of a process that is gone, or older than LEASE
+        seconds on another host, is taken over)."""
+        if self.path is None:
+            return True
+        with self._lock:
+            self._db.execute("BEGIN IMMEDIATE")  # the write lock: one claimer at a time
+            won = False
+            try:
+                stored = self._db.execute("SELECT 1 FROM runs WHERE key = ?", (key,)).fetchone()
+                row = self._db.execute("SELECT owner, host, pid, at FROM claims WHERE key = ?",
+                                       (key,)).fetchone()
+                if not stored and (row is None or row[0] == self._owner or _stale(*row[1:])):
+                    self._db.execute("INSERT OR REPLACE INTO claims VALUES (?, ?, ?, ?, ?)",
+                                     (key, self._owner, socket.gethostname(), os.getpid(), time.time()))
+                    won = True
+            finally:
+                if won:
+                    self._db.commit()
+                else:
+                    self._db.rollback()
+            return won
+
+    def claimed_elsewhere(self, keys: Iterable[str]) -> set:
+        """The keys among `keys` that a live process other than this one has claimed."""
+        keys = list(keys)
+        with self._lock:
+            rows = self._db.execute("SELECT key, owner, host, pid, at FROM claims").fetchall()
+        wanted = set(keys)
+        return {k for k, owner, host, pid, at in rows
+                if k in wanted and owner != self._owner and not _stale(host, pid, at)}
+
+    def release(self) -> None:
+        """Drop this store's claims on runs it did not finish (a stopped sweep)."""
+        if self.path is None:
+            return
+        with self._lock, self._db:
+            self._db.execute("DELETE FROM claims WHERE owner = ?", (self._owner,))
 
     # --- reading ---
     def keys(self) -> set:
@@ -168,12 +286,23 @@ class RunStore:
             rows.append(row)
         return pd.DataFrame(rows)
 
-    @staticmethod
-    def _record(row) -> dict:
+    def _record(self, row) -> dict:
         r = dict(zip(FIELDS, row))
-        r["config"] = json.loads(r["config"])
-        r["metrics"] = json.loads(r["metrics"])
-        r["fold"] = json.loads(r["fold"]) if r["fold"] else None
+        try:
+            r["config"] = json.loads(r["config"])
+            r["metrics"] = json.loads(r["metrics"])
+            if not isinstance(r["config"], dict) or not isinstance(r["metrics"], dict):
+                raise ValueError("config and metrics must be JSON objects")
+            for k in ("epochs", "compiles"):
+                r[k] = int(r[k])
+            r["seconds"] = float(r["seconds"])
+            r["status"], r["message"] = str(r["status"]), str(r["message"])
+            r["fold"] = json.loads(r["fold"]) if r["fold"] else None
+        except (ValueError, TypeError) as e:
+            where = "the in-memory store" if self.path is None else repr(str(self.path))
+            raise ValueError(f"run {r['key']!r} in the store {where} is damaged ({e}); delete that "
+                             "row (DELETE FROM runs WHERE key = '...') and run the sweep again to "
+                             "redo it") from None
         return r
 
     def __len__(self) -> int:
@@ -193,6 +322,24 @@ class RunStore:
 
     def __repr__(self) -> str:
         return f"RunStore({None if self.path is None else str(self.path)!r})"
+
+
+def process_alive(pid: int) -> bool:
+    """Whether a process with this id runs on this host (one we may not signal counts as running)."""
+    try:
+        os.kill(int(pid), 0)
+    except ProcessLookupError:
+        return False
+    except (PermissionError, OverflowError, ValueError):
+        return True
+    return True
+
+
+def _stale(host: str, pid: int, at: float) -> bool:
+    """Whether a claim no longer holds: its process is gone (same host) or it is older than LEASE."""
+    if host == socket.gethostname() and not process_alive(pid):
+        return True
+    return time.time() - float(at) > LEASE
 
 
 def open_store(store) -> tuple:

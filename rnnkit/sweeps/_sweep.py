@@ -23,7 +23,7 @@ from ..data._config import Config
 from ..data._errors import DataError
 from ._export import document, write_document
 from ._plan import plan
-from ._runner import fold_spec, run
+from ._runner import MAX_WORKERS, fold_spec, run
 
 METRICS = {"regression": ("mae", "rmse", "mase", "r2"),
            "classification": ("accuracy", "balanced_accuracy", "log_loss")}
@@ -140,8 +140,10 @@ class SweepResult:
             mean (named as the metric), ``<metric>_std`` (sample std over
             seeds), ``seed_spread`` (max - min over seeds), the test score and
             the baselines' mean for the same metric, ``diverged`` and ``failed``
-            (shares of the setting's runs). Best first (lower is better except
-            for accuracy, balanced_accuracy and r2); settings without a score last.
+            (shares of the setting's runs) and ``reason`` (the message of the
+            setting's first failed run, "" when none failed). Best first (lower
+            is better except for accuracy, balanced_accuracy and r2); settings
+            without a score (every run failed or diverged) last.
         """
         self._require_metric()
         t, m = self._scored(), self.metric
@@ -155,6 +157,9 @@ class SweepResult:
             out[c] = g[c].mean()
         out["diverged"] = g["status"].agg(lambda s: float(s.str.startswith("diverged").mean()))
         out["failed"] = g["status"].agg(lambda s: float((s == "failed").mean()))
+        why = t["message"].where(t["status"] == "failed", "").fillna("")
+        out["reason"] = why.groupby([t[f] for f in self.varied], dropna=False, sort=False).agg(
+            lambda s: next((m for m in s if m), ""))
         out = out.sort_values(m, ascending=not higher_is_better(m), na_position="last", kind="stable")
         out.insert(0, "rank", np.arange(1, len(out) + 1))
         return out.reset_index()
@@ -225,13 +230,16 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
         df: the frame (never modified).
         config: base Config (None: defaults); fields not in `space` keep its values.
         space: Config field -> list of values; strategy="random" also takes ranges
-            {"low", "high", "log", "int"}.
+            {"from": 1e-4, "to": 0.1, "spacing": "log"} ("spacing" "even" by default;
+            "whole": true draws whole numbers, both ends included).
         strategy: "grid" or "random".
         n_samples: settings to draw (random only).
         seeds: seeds per setting (count: config.seed + 0..n-1) or a list of seeds.
         metric: score to rank by; default "val_rmse" (regression) / "val_log_loss"
             (classification).
-        workers: processes to run in (1: this process). Each worker is a spawned
+        workers: processes to run in (1: this process; at most MAX_WORKERS). Our own
+            pool starts no more processes than there are runs to do and usable
+            cores (``pool_size``). Each worker is a spawned
             process bound to one core (round robin), so XLA and BLAS run one
             thread there; results equal the serial run's to float32 rounding.
             Its processes share a temporary compilation cache.
@@ -256,7 +264,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
     Returns:
         SweepResult.
     Raises:
-        DataError when every planned run failed on its data (one failing run is a row).
+        DataError when every planned run failed (any exception inside one run, not only
+        bad data, is that run's failed row with its message; the sweep goes on).
     """
     if not isinstance(df, pd.DataFrame):
         raise TypeError(f"`df` must be a pandas DataFrame, got {type(df).__name__}")
@@ -264,8 +273,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
     if not isinstance(config, Config):
         raise TypeError(f"`config` must be an rnnkit.Config or None, got {type(config).__name__}")
     metric = _check_metric(metric, config.task)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise ValueError(f"`workers` (={workers!r}) must be a whole number >= 1")
+    if isinstance(workers, bool) or not isinstance(workers, int) or not 1 <= workers <= MAX_WORKERS:
+        raise ValueError(f"`workers` (={workers!r}) must be a whole number from 1 to {MAX_WORKERS}")
     if executor is not None and not isinstance(executor, cf.Executor):
         raise TypeError(f"`executor` (={executor!r}) must be a concurrent.futures.Executor, e.g. "
                         "dask.distributed.Client(...).get_executor(), or None")
@@ -295,8 +304,8 @@ def sweep(df: pd.DataFrame, config: Optional[Config], space: dict, *, strategy: 
                   progress=progress, stop=stop, on_run=on_run, folds=spec)
     planned = len(configs) * (1 if spec is None else spec["folds"])
     if len(records) == planned and all(r["status"] == "failed" for r in records):
-        raise DataError(f"every one of the {len(records)} runs failed on its data; the first: "
-                        f"{records[0]['message']}")
+        raise DataError(f"every one of the {len(records)} runs failed (each is stored as a failed "
+                        f"row); the first: {records[0]['message']}")
     result = SweepResult(records, metric=metric, varied=list(space), config=config,
                          planned=planned, df=df, folds=spec)
     if any(r["status"] != "failed" for r in records):

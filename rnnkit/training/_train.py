@@ -43,6 +43,7 @@ class TrainOutcome(NamedTuple):
     best_epoch: int  # epoch (1-based) whose parameters are returned; 0 = the initial ones
     compiles: int  # programs compiled (traced) during this call
     seconds: float  # wall time of the call
+    watched: str = "val_loss"  # what chose best_epoch and early stopping: "val_loss" or "val_accuracy"
 
 
 def compile_count() -> int:
@@ -200,7 +201,8 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     optax step each (``chain(clip_by_global_norm(clip), optimizer)``), then the
     validation loss of the new parameters. Early stopping watches that loss
     (the training loss when there are no validation windows) with
-    ``config.patience``. The parameters returned are always those of the best
+    ``config.patience``; with ``config.watch`` "metric", classification watches
+    the validation accuracy instead (ties broken by the validation loss). The parameters returned are always those of the best
     epoch so far (lowest watched loss), also when all epochs ran.
 
     A non-finite training loss, gradient norm or validation loss ends
@@ -240,7 +242,10 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     with precision(config.dtype):
         # 1. data on the device, initial state, the (cached) epoch program
         state, run = _setup(prepared, config, dims)
-        best = (math.inf, 0, state[0])  # (watched loss, epoch, params)
+        # classification may watch validation accuracy (ties broken by the loss)
+        watch_accuracy = config.watch == "metric" and config.task == "classification" and has_val
+        y_val = prepared.targets[prepared.target_rows("val")] if watch_accuracy else None
+        best = ((math.inf, math.inf) if watch_accuracy else math.inf, 0, state[0])  # (watched, epoch, params)
         rows, status = [], "ok"
         bar = tqdm(total=config.epochs, desc="training", unit="epoch", disable=not progress,
                    leave=False)
@@ -259,8 +264,11 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
                 if on_epoch is not None:
                     on_epoch(dict(row))
                 # 3. keep the best parameters; decide whether to go on
+                score = None
+                if watch_accuracy and bool(stats.finite):
+                    score = (-_accuracy(state[0], prepared, shapes, y_val), row["val_loss"])
                 best, status = _judge(row, bool(stats.finite), has_val, best, state[0],
-                                      config.patience, stop)
+                                      config.patience, stop, score)
                 if status != "ok":
                     break
         finally:
@@ -269,7 +277,15 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     history = pd.DataFrame(rows, columns=list(HISTORY_COLUMNS))
     history["epoch"] = history["epoch"].astype(np.int64)
     return TrainOutcome(params, history, status, int(best[1]),
-                        _epoch.thread_compile_count() - compiles0, time.perf_counter() - t0)
+                        _epoch.thread_compile_count() - compiles0, time.perf_counter() - t0,
+                        "val_accuracy" if watch_accuracy else ("val_loss" if has_val else "train_loss"))
+
+
+def _accuracy(params, prepared, shapes, y_val) -> float:
+    """Share of validation targets (codes >= 0) whose largest logit is the true class."""
+    logits = evaluate(params, prepared, "val", shapes=shapes)  # (N, C) or (N, T, C)
+    ok = y_val >= 0
+    return float((np.argmax(logits, axis=-1) == y_val)[ok].mean()) if ok.any() else math.nan
 
 
 class _Run(NamedTuple):
@@ -299,15 +315,16 @@ def _setup(prepared, config: Config, dims: Dict[str, int]):
                        jnp.asarray(activation_index(config.activation)))
 
 
-def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience, stop):
+def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience, stop, score=None):
     """After an epoch: the updated best (loss, epoch, params) and the status ("ok" = go on).
 
     Divergence is checked first (its parameters must never become the best),
     then improvement, then patience, then the user's stop.
     """
     epoch = row["epoch"]
-    watched = row["val_loss"] if has_val else row["train_loss"]
-    numbers = (row["train_loss"], row["grad_norm"], watched)
+    # score: (-accuracy, loss) when accuracy is watched (compared as a pair); else the loss
+    watched = score if score is not None else (row["val_loss"] if has_val else row["train_loss"])
+    numbers = (row["train_loss"], row["grad_norm"], *(watched if score is not None else (watched,)))
     if not (finite and all(math.isfinite(v) for v in numbers)):
         return best, f"diverged at epoch {epoch}"
     if watched < best[0]:
