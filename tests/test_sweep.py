@@ -308,6 +308,8 @@ def test_interleave_takes_one_run_per_program_in_turn():
 
 
 def test_a_compilation_cache_of_the_callers_is_left_alone(monkeypatch, tmp_path):
+    # rnnkit's own cache off (as at import when the caller set up jax's): workers keep the caller's
+    monkeypatch.setattr(_runner._cache, "cache_dir", lambda: None)
     monkeypatch.setenv("JAX_COMPILATION_CACHE_DIR", str(tmp_path))
     assert _runner._shared_compile_cache() == ({}, None)
 

@@ -30,6 +30,7 @@ from ..data._errors import DataError
 from ._export import fingerprint
 from ..fitting._fit import fit
 from ._store import open_store, run_key
+from ..training import _cache
 from ..training._train import shape_plan
 
 # One XLA / BLAS thread per worker process, in its environment from the start (jax
@@ -105,15 +106,18 @@ def _shared_compile_cache() -> tuple:
     Every worker process compiles its own programs; with jax's persistent
     compilation cache in one directory, a program one worker has compiled is
     loaded from disk by the others (measured: a first fit of 4.2 s took 1.6 s
-    with the program on disk). The directory lives as long as the pool. A cache
-    the caller has set up (JAX_COMPILATION_CACHE_DIR) is used as it is.
+    with the program on disk). The workers use this process's folder
+    (``training._cache``: the user's cache, or the one ``compilation_cache``
+    chose), so programs also outlive the sweep. With that cache off, a
+    temporary folder lives as long as the pool. A cache the caller has set up
+    for jax itself (JAX_COMPILATION_CACHE_DIR) is used as it is.
     """
+    if _cache.cache_dir() is not None:
+        return {_cache.ENV: str(_cache.cache_dir())}, None
     if os.environ.get("JAX_COMPILATION_CACHE_DIR"):
         return {}, None
     path = tempfile.mkdtemp(prefix="rnnkit-programs-")
-    return {"JAX_COMPILATION_CACHE_DIR": path,
-            "JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS": "0",
-            "JAX_PERSISTENT_CACHE_MIN_ENTRY_SIZE_BYTES": "0"}, path
+    return {_cache.ENV: path}, path
 
 
 def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
