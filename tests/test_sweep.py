@@ -256,6 +256,17 @@ def test_process_workers_equal_the_serial_run(sunspots, monkeypatch):
         return env, path
     monkeypatch.setattr(_runner, "_shared_compile_cache", spy)
     monkeypatch.delenv("JAX_COMPILATION_CACHE_DIR", raising=False)
+    # rnnkit's cache off: the pool's own temporary folder (with it on, the workers get its
+    # folder: tests/test_compilation_cache.py)
+    kept = rnnkit.training._cache.cache_dir()
+    rnnkit.compilation_cache(None)
+    try:
+        _pooled_equal_serial(sunspots, made)
+    finally:
+        rnnkit.compilation_cache(kept if kept is not None else None)
+
+
+def _pooled_equal_serial(sunspots, made):
     space = {"window": [4, 8], "activation": ["tanh", "relu"]}
     serial = sweep(sunspots, BASE, space, progress=False)
     seen = []
