@@ -22,7 +22,6 @@ from typing import Callable, Dict, List, Optional, Sequence
 
 import jax
 import pandas as pd
-from tqdm.auto import tqdm
 
 from ..data._config import Config
 from ..data._prepare import prepare
@@ -297,6 +296,8 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
     for i, k in enumerate(keys):
         first.setdefault(k, i)
     todo = [i for k, i in first.items() if k not in done]
+    from tqdm.auto import tqdm  # on first use, as in training._train
+
     bar = tqdm(total=len(first), initial=len(first) - len(todo), desc="sweep", unit="run",
                disable=not progress)
 
