@@ -118,12 +118,14 @@ def restore_cache():
 def test_the_switch_moves_and_turns_off_the_cache(tmp_path, restore_cache):
     assert rnnkit.compilation_cache is _cache.compilation_cache
     assert rnnkit.compilation_cache(tmp_path / "here") == tmp_path / "here"
+    assert rnnkit.compilation_cache() == tmp_path / "here"  # asking changes nothing
     assert jax.config.jax_compilation_cache_dir == str(tmp_path / "here")
     assert _cache.cache_dir() == tmp_path / "here"
     # a new program goes into the new folder
     jax.jit(lambda x: x * 3.0 + 1.0).lower(np.ones(3)).compile()
     assert rnnkit.compilation_cache(None) is None
-    assert jax.config.jax_compilation_cache_dir is None and _cache.cache_dir() is None
+    assert jax.config.jax_compilation_cache_dir is None and rnnkit.compilation_cache() is None
+    assert rnnkit.compilation_cache(True) == _cache.default_dir()  # the session's folder here
     assert rnnkit.compilation_cache(False) is None
     with pytest.raises(TypeError, match="`path`"):
         rnnkit.compilation_cache(3)

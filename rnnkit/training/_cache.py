@@ -12,7 +12,8 @@ again (measured here: the first fit of the demo went from about 8 s to under
 ``RNNKIT_CACHE_DIR`` moves it (empty or "off" turns it off) and
 ``compilation_cache(path)`` moves or turns it off in a running process. A
 cache the user gave jax itself (``JAX_COMPILATION_CACHE_DIR`` or
-``jax_compilation_cache_dir``) is left as it is.
+``jax_compilation_cache_dir``) is left as it is, unless ``RNNKIT_CACHE_DIR``
+names a folder too.
 
 jax's own file store writes an entry in place and keeps a damaged one forever
 (each later process warns and compiles again). Ours, plugged in where jax keeps
@@ -145,24 +146,31 @@ def _install(path: Optional[Path]) -> None:
     _state["path"] = path
 
 
-def compilation_cache(path: Union[str, os.PathLike, bool, None] = True) -> Optional[Path]:
+_ASK = object()
+
+
+def compilation_cache(path: Union[str, os.PathLike, bool, None] = _ASK) -> Optional[Path]:
     """Keep compiled programs on disk in ``path``, so a restarted process skips compiling them.
 
     Args:
       path: a folder (made when needed); True: the default folder (``RNNKIT_CACHE_DIR``,
         else the platform's cache folder, e.g. ~/.cache/rnnkit/programs on Linux);
-        None or False: off for the rest of this process (compiled programs stay in memory).
+        None or False: off for the rest of this process (compiled programs stay in memory);
+        left out: nothing changes (the call only tells the folder).
 
     Returns:
-      The folder now in use, or None when the cache is off.
+      The folder now in use, or None when rnnkit's cache is off.
 
     The folder may be deleted at any time: what is missing is compiled again.
     Worker processes of ``rnnkit.sweep`` use the same folder.
 
     Example:
+      >>> rnnkit.compilation_cache()                       # where it is now
       >>> rnnkit.compilation_cache("/scratch/me/rnnkit-programs")
-      >>> rnnkit.compilation_cache(None)   # off
+      >>> rnnkit.compilation_cache(None)                   # off
     """
+    if path is _ASK:
+        return _state["path"]
     if path is True:
         target = default_dir()
     elif path is None or path is False:
