@@ -73,10 +73,11 @@ def child_fit(smoke: bool) -> dict:
     import_seconds = time.perf_counter() - t0
     df, config = _frame_and_config(rnnkit, smoke)
     with _util.CompileClock() as clock:
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         res = rnnkit.fit(df, config, progress=False)
-        seconds = time.perf_counter() - t0
-    return {"seconds": seconds, "import_seconds": import_seconds, "epochs": len(res.history),
+        seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
+    return {"seconds": seconds, "cpu_seconds": cpu, "import_seconds": import_seconds,
+            "epochs": len(res.history),
             "training_seconds": float(res.history["seconds"].sum()),
             "cache_hits": events.get("/jax/compilation_cache/cache_hits", 0),
             "cache_misses": events.get("/jax/compilation_cache/cache_misses", 0),
@@ -143,12 +144,14 @@ def child_surface(smoke: bool, repeats: int) -> dict:
     res.prepared.windows(split)
     sides = {"batched": batched_planes, "loop": loop_planes}
     times = {name: [] for name in sides}
+    cpu = {name: [] for name in sides}
     got = {}
     for r in range(repeats + 1):  # round 0 is the cold call of each side (compiling included)
         for name in (sides if r % 2 == 0 else list(sides)[::-1]):
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             got[name] = sides[name](res, split, steps2, steps1)
             times[name].append(time.perf_counter() - t0)
+            cpu[name].append(time.process_time() - c0)
     (_, _, vb), (_, lb) = got["batched"]
     (_, _, vl), (_, ll) = got["loop"]
     diff = float(max(np.max(np.abs(vb - vl) / np.maximum(np.abs(vl), 1e-12)),
@@ -162,7 +165,9 @@ def child_surface(smoke: bool, repeats: int) -> dict:
     x = res.prepared.windows(split)[0]
     return {"windows": int(x.shape[0]), "steps": int(x.shape[1]), "hidden": int(res.config.hidden),
             "points": steps2 * steps2 + steps1, "cold": {k: v[0] for k, v in times.items()},
-            "warm": {k: min(v[1:]) for k, v in times.items()}, "max_relative_difference": diff,
+            "warm": {k: min(v[1:]) for k, v in times.items()},
+            "cold_cpu": {k: v[0] for k, v in cpu.items()}, "warm_cpu": {k: min(v[1:]) for k, v in cpu.items()},
+            "max_relative_difference": diff,
             "default_surface_warm": min(default)}
 
 
@@ -186,9 +191,9 @@ def child_panel(smoke: bool) -> dict:
         return inner
     p.views.show_fit = timed("figures", p.views.show_fit)
     p.views.show_surfaces = timed("surfaces", p.views.show_surfaces)
-    clicks = []
+    clicks, cpu = [], []
     for _ in range(2):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         p.train_button.click()
         if not p.wait(1800):
             raise RuntimeError("the panel's job did not end")
@@ -196,10 +201,11 @@ def child_panel(smoke: bool) -> dict:
         if callable(wait_views):
             wait_views()
         clicks.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
         if p.status_level == "error":
             raise RuntimeError(f"the panel reported an error: {p.status.value}")
     fit_seconds = [float(h) for h in (p.result.history["seconds"].sum(),)]
-    return {"import_seconds": import_seconds, "clicks": clicks, "phases": phases,
+    return {"import_seconds": import_seconds, "clicks": clicks, "clicks_cpu": cpu, "phases": phases,
             "epochs": len(p.result.history), "training_seconds_last": fit_seconds[0]}
 
 
@@ -261,14 +267,17 @@ def report(r: dict) -> None:
     s = r["surface"]
     print(f"import rnnkit: {r['import_seconds']:.2f} s (median of {r['imports']})")
     print(f"fresh-process first fit: empty cache {r['fit_empty_seconds']:.2f} s, filled cache "
-          f"{r['fit_filled_seconds']:.2f} s -> {r['fit_empty_over_filled']:.2f}x "
+          f"{r['fit_filled_seconds']:.2f} s -> {r['fit_empty_over_filled']:.2f}x; CPU "
+          f"{min(x['cpu_seconds'] for x in e):.2f} s / {min(x['cpu_seconds'] for x in f):.2f} s "
           f"(training epochs alone {min(x['training_seconds'] for x in f):.2f} s; filled: "
           f"{f[0]['cache_hits']} programs loaded, {f[0]['cache_misses']} written; compile phases "
           f"empty {e[0]['compile']['by_phase']} filled {f[0]['compile']['by_phase']})")
     print(f"loss surface {s['points']} points ({s['windows']} windows x {s['steps']} steps, H = "
           f"{s['hidden']}): cold loop {s['cold']['loop']:.2f} s / batched {s['cold']['batched']:.2f} s "
           f"-> {r['surface_cold_ratio']:.2f}x; warm loop {s['warm']['loop']:.2f} s / batched "
-          f"{s['warm']['batched']:.2f} s -> {r['surface_warm_ratio']:.2f}x; max relative difference "
+          f"{s['warm']['batched']:.2f} s -> {r['surface_warm_ratio']:.2f}x (CPU s: cold "
+          f"{s['cold_cpu']['loop']:.2f} / {s['cold_cpu']['batched']:.2f}, warm {s['warm_cpu']['loop']:.2f} / "
+          f"{s['warm_cpu']['batched']:.2f}); max relative difference "
           f"{s['max_relative_difference']:.1e}; default 21 x 21 surface warm "
           f"{s['default_surface_warm']:.2f} s")
     print(f"panel Train to last figure: fresh process, empty cache {r['click_empty_seconds']:.2f} s; "
