@@ -12,11 +12,12 @@ the grid with a ``batch_size``, i.e. vmap over a block of points at a time.
 Each point runs its own forward pass that keeps only the state (and, many to
 many, a running sum of the loss terms): the model's ``loss`` keeps every
 step's state for its gradient, which for a block of points is tens of MB
-written and read again. Measured here on the demo's validation windows
-(2604 x 24 steps, H = 32, 15 x 15 points, 2 cores): the loop of ``loss``
-calls 2.4 s, ``lax.map`` of ``loss`` 2.3-3.6 s, this 0.5-0.8 s
-(benchmarks/bench_first_result.py). Its values equal ``loss`` to rounding
-(tests/test_diagnose.py).
+written and read again (``lax.map`` of ``loss`` measured 2.3-3.6 s on the
+demo's 15 x 15 surface, no faster than a loop of ``loss`` calls). The panel's
+surface and slice (266 points on the demo's 2604 validation windows of 24
+steps, H = 32) took 0.9 CPU seconds warm against 2.5 for the loop, 1.8
+against 2.9 cold (benchmarks/bench_first_result.py, side by side on a busy
+2-core machine). Its values equal ``loss`` to rounding (tests/test_diagnose.py).
 """
 from __future__ import annotations
 
