@@ -63,9 +63,13 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
     files = _entries(cache)
     assert len(files) == first["misses"]
 
+    # Every stored program is loaded, not compiled. (A program that compiled just under jax's
+    # time threshold in the first process may cross it in a busier second one and be written
+    # then: more writes are allowed, fewer loads are not.)
     second = _probe(cache)
-    assert second["hits"] == first["misses"] and second["misses"] == 0  # nothing compiled by XLA
+    assert second["hits"] == len(files)
     assert second["val_loss"] == first["val_loss"] and second["V"] == first["V"]
+    files = sorted(_entries(cache), key=lambda f: -f.stat().st_size)  # the slowest to compile first
 
     # Damage: one entry cut short, one with bytes changed in the middle, one emptied. With
     # warnings as errors, a warning from jax's cache would fail the fit: none may come.
@@ -81,12 +85,12 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
         f.write_bytes(bytes(data))
     damaged = min(len(files), 3)
     third = _probe(cache, "-W", "error")
-    assert third["misses"] == damaged and third["hits"] == len(files) - damaged
+    assert third["hits"] == len(files) - damaged and third["misses"] >= damaged
     assert third["val_loss"] == first["val_loss"] and third["V"] == first["V"]
     # each damaged entry was replaced by a whole one, which the next process loads
     store = _cache.CheckedFiles(cache)
     assert all(store.get(f.name[:-len("-rnnkit")]) is not None for f in files)
-    assert _probe(cache)["misses"] == 0
+    assert _probe(cache)["hits"] >= len(files)
 
 
 def test_a_deleted_folder_is_made_again_and_off_writes_nothing(tmp_path):
