@@ -120,6 +120,7 @@ def render(summary: dict) -> str:
     lines += _step_section(parts.get("step", {}))
     lines += _sweep_section(parts.get("sweep", {}))
     lines += _latency_section(parts.get("latency", {}))
+    lines += _first_result_section(parts.get("first_result", {}))
     lines += _memory_section(parts.get("memory", {}))
     return "\n".join(lines) + "\n"
 
@@ -198,6 +199,36 @@ def _latency_section(part: dict) -> list:
             f"Cold compile detail: {c['compile_detail']}.",
             f"Diagnostics (lazy, not part of fit), first use: {part['diagnostics_first_use']}."]
     return out
+
+
+def _first_result_section(part: dict) -> list:
+    out = ["", "## Time to first result (bench_first_result.py)", ""] + _failed(part)
+    if "surface" not in part:
+        return out
+    s = part["surface"]
+    e, f = part["fit_empty_cache"], part["fit_filled_cache"]
+    rows = [("import rnnkit (median)", f"{part['import_seconds']:.2f}", "", ""),
+            ("first fit, fresh process: empty / filled program folder",
+             f"{part['fit_empty_seconds']:.2f} / {part['fit_filled_seconds']:.2f}",
+             f"{part['fit_empty_over_filled']:.2f}x",
+             f"training epochs {min(x['training_seconds'] for x in f):.2f} s; compile phases "
+             f"empty {e[0]['compile']['by_phase']}, filled {f[0]['compile']['by_phase']}; "
+             f"{f[0]['cache_hits']} programs loaded"),
+            (f"loss surface {s['points']} points, cold: loop / batched",
+             f"{s['cold']['loop']:.2f} / {s['cold']['batched']:.2f}", f"{part['surface_cold_ratio']:.2f}x",
+             f"{s['windows']} windows x {s['steps']} steps, H = {s['hidden']}; disk cache off"),
+            (f"loss surface {s['points']} points, warm: loop / batched",
+             f"{s['warm']['loop']:.2f} / {s['warm']['batched']:.2f}", f"{part['surface_warm_ratio']:.2f}x",
+             f"max relative difference {s['max_relative_difference']:.1e}; 21 x 21 surface warm "
+             f"{s['default_surface_warm']:.2f} s"),
+            ("panel Train to last figure, fresh process: empty / filled program folder",
+             f"{part['click_empty_seconds']:.2f} / {part['click_filled_seconds']:.2f}",
+             f"{part['click_empty_seconds'] / part['click_filled_seconds']:.2f}x",
+             f"second click {part['click_again_seconds']:.2f} s; phases of the filled-folder process "
+             f"{ {k: [round(x, 2) for x in v] for k, v in part['panel_filled_cache'][0]['phases'].items()} }")]
+    out += [f"Best of {part['rounds']} round(s); every measurement in a fresh process with its own "
+            "folder of compiled programs.", ""]
+    return out + _table(rows, ("what", "seconds", "ratio", "details"))
 
 
 def _memory_section(part: dict) -> list:

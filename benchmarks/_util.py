@@ -144,6 +144,9 @@ def python_env(extra: Optional[dict] = None) -> dict:
     env = dict(os.environ)
     env["PYTHONPATH"] = os.pathsep.join([str(ROOT)] + [p for p in [env.get("PYTHONPATH")] if p])
     env.setdefault("MPLBACKEND", "Agg")
+    # No compiled programs from earlier runs (a "cold" fit compiles) and none left in the
+    # user's cache folder; a benchmark about that cache passes its own folder in `extra`.
+    env["RNNKIT_CACHE_DIR"] = "off"
     env.update(extra or {})
     return env
 

@@ -11,6 +11,9 @@ settings and peak memory of one never leak into another):
                            against numpy's float32 matmul rate (its own ratios, one run)
     bench_sweep.py         programs compiled, compile share, 2 workers vs 1
     bench_latency.py       cold and warm fit() of the default config on the demo data
+    bench_first_result.py  import time; a fresh process's first fit with an empty and a filled
+                           folder of compiled programs; loss surfaces batched vs the loop;
+                           panel Train to last figure
     bench_train_memory.py  peak resident set of prepare + training on 10 million rows
 
 RESULTS.md (written atomically) records the machine, the date, the versions,
@@ -178,6 +181,7 @@ def run_suite(mode: str) -> dict:
         for name, fn in (("step", lambda: step_benchmark(mode)),
                          ("sweep", lambda: _mine("bench_sweep.py", mode)),
                          ("latency", lambda: _mine("bench_latency.py", mode)),
+                         ("first_result", lambda: _mine("bench_first_result.py", mode)),
                          ("memory", lambda: _mine("bench_train_memory.py", mode))):
             t = time.perf_counter()
             print(f"== {name}", flush=True)

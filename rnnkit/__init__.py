@@ -25,6 +25,7 @@ from .data import DataError as DataError
 from .data import Prepared as Prepared
 from .data import datasets as datasets
 from .data import prepare as prepare
+from .training import compilation_cache as compilation_cache
 from .training import compile_count as compile_count
 from .inspection import Diagnostics as Diagnostics
 from .inspection import loss_slice as loss_slice

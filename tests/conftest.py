@@ -1,8 +1,16 @@
 """Strict settings for every test: float64 available, no silent rank promotion."""
+import atexit
 import os
+import shutil
+import tempfile
 
 os.environ.setdefault("XLA_FLAGS", "--xla_force_host_platform_device_count=1")
 os.environ.setdefault("MPLBACKEND", "Agg")
+# Compiled programs go to a folder of this test session (its subprocesses share it), never
+# to the user's cache; tests of the cache itself choose their own folders.
+_PROGRAMS = tempfile.mkdtemp(prefix="rnnkit-test-programs-")
+atexit.register(shutil.rmtree, _PROGRAMS, ignore_errors=True)
+os.environ["RNNKIT_CACHE_DIR"] = _PROGRAMS
 
 import jax  # noqa: E402
 

@@ -201,3 +201,56 @@ def test_loaded_result_without_data(tmp_path, trained):
     attached = rnnkit.load_fit(tmp_path / "m", df=noisy_sine())
     a, b, v = rnnkit.loss_surface(attached, steps=3, span=0.1)
     np.testing.assert_allclose(v[1, 1], trained.history.val_loss.iloc[trained.best_epoch - 1], **EXACT32)
+
+
+@pytest.mark.parametrize("task, mode, masked, act", [
+    ("regression", "many-to-one", False, "tanh"),
+    ("regression", "many-to-many", True, "relu"),
+    ("classification", "many-to-one", True, "sigmoid"),
+    ("classification", "many-to-many", False, "linear"),
+])
+def test_grid_in_one_program_equals_the_loss_point_by_point(task, mode, masked, act):
+    # The batched grid (carry-only forward per point, blocks of points vmapped) against the
+    # model's own loss called once per point, as the loop before it did; float64.
+    from rnnkit.inspection._surface import _grid_losses
+    rng = np.random.default_rng(11)
+    B, T, I, H, O = 6, 5, 2, 4, 3
+    p = {"U": rng.normal(size=(I, H)), "V": 0.5 * rng.normal(size=(H, H)), "b": rng.normal(size=H),
+         "W": rng.normal(size=(H, O)), "c": rng.normal(size=O)}
+    d1 = {k: rng.normal(size=v.shape) for k, v in p.items()}
+    d2 = {k: rng.normal(size=v.shape) for k, v in p.items()}
+    x = rng.normal(size=(B, T, I))
+    lead = (B,) if mode == "many-to-one" else (B, T)
+    y = rng.integers(0, O, size=lead) if task == "classification" else rng.normal(size=lead + (O,))
+    mask = None
+    if masked:  # front padding, end padding and one all-padding row
+        mask = np.ones((B, T), bool)
+        mask[0, :2] = False
+        mask[1, 3:] = False
+        mask[2] = False
+        if task == "classification":
+            y[2] = -1  # a padded target that is not a class: never gathered as one
+    points = np.array([[0.0, 0.0], [0.5, -0.25], [-1.0, 1.0], [0.1, 0.9], [2.0, 0.0], [0.0, -0.7],
+                       [-0.3, -0.3]])
+    got = _grid_losses(p, d1, d2, points, x, y, mask, act=act, task=task, mode=mode, batch=3)
+    want = [rnnkit.loss({k: p[k] + a * d1[k] + b * d2[k] for k in p}, x, y, activation=act,
+                        task=task, mode=mode, mask=mask) for a, b in points]
+    np.testing.assert_allclose(np.asarray(got), np.asarray(want), **EXACT64)
+
+
+def test_surface_points_equal_the_loss_at_moved_weights(trained):
+    from rnnkit.inspection._surface import _directions
+    a, b, v = rnnkit.loss_surface(trained, steps=5, span=0.8, seed=3)
+    params, (d1, d2) = _directions(trained, 3, 2)
+    x, y, mask = trained.prepared.windows("val")
+    for i, j in [(0, 0), (1, 3), (4, 2), (2, 4)]:
+        moved = {k: np.asarray(params[k]) + a[j] * d1[k] + b[i] * d2[k] for k in params}
+        want = rnnkit.loss(moved, x.astype(np.float32), y.astype(np.float32), activation="tanh",
+                           mode=trained.config.mode)
+        np.testing.assert_allclose(v[i, j], want, **EXACT32)
+    alphas, values = rnnkit.loss_slice(trained, param="U", steps=5, span=0.8, seed=3)
+    _, (d,) = _directions(trained, 3, 1)
+    moved = {k: np.asarray(params[k]) + (alphas[1] * d[k] if k == "U" else 0.0) for k in params}
+    np.testing.assert_allclose(values[1], rnnkit.loss(moved, x.astype(np.float32), y.astype(np.float32),
+                                                      activation="tanh", mode=trained.config.mode),
+                               **EXACT32)

@@ -12,7 +12,9 @@ from pathlib import Path
 import pytest
 import statsmodels.api as sm
 
+import rnnkit
 from rnnkit.sweeps import _runner
+from rnnkit.training import _cache
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -85,10 +87,15 @@ def test_stale_cache_folders_are_removed_on_the_next_start(tmp_path, monkeypatch
     (stale / "program.bin").write_bytes(b"x")
     monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
     monkeypatch.delenv("JAX_COMPILATION_CACHE_DIR", raising=False)
-    env, made = _runner._shared_compile_cache()
+    kept = rnnkit.compilation_cache()
+    rnnkit.compilation_cache(None)  # rnnkit's own folder off: the pool makes a temporary one
     try:
-        assert not stale.exists() and live.exists() and other.exists()
-        assert Path(made).name.startswith(f"rnnkit-programs-{os.getpid()}-")
-        assert env["JAX_COMPILATION_CACHE_DIR"] == made
+        env, made = _runner._shared_compile_cache()
+        try:
+            assert not stale.exists() and live.exists() and other.exists()
+            assert Path(made).name.startswith(f"rnnkit-programs-{os.getpid()}-")
+            assert env[_cache.ENV] == made
+        finally:
+            os.rmdir(made)
     finally:
-        os.rmdir(made)
+        rnnkit.compilation_cache(kept if kept is not None else None)

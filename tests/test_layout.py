@@ -153,7 +153,7 @@ def _write(tmp_path, text):
 
 
 def test_import_rnnkit_stays_lazy_about_heavy_modules():
-    code = ("import sys, rnnkit; heavy = [m for m in ('matplotlib', 'ipywidgets', 'jsonschema') "
-            "if m in sys.modules]; print(','.join(heavy))")
+    code = ("import sys, rnnkit; heavy = [m for m in ('matplotlib', 'ipywidgets', 'jsonschema', "
+            "'optax', 'tqdm') if m in sys.modules]; print(','.join(heavy))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "", f"import rnnkit loaded {out.stdout.strip()}"

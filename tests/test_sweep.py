@@ -258,6 +258,17 @@ def test_process_workers_equal_the_serial_run(sunspots, monkeypatch):
         return env, path
     monkeypatch.setattr(_runner, "_shared_compile_cache", spy)
     monkeypatch.delenv("JAX_COMPILATION_CACHE_DIR", raising=False)
+    # rnnkit's cache off: the pool's own temporary folder (with it on, the workers get its
+    # folder: tests/test_compilation_cache.py)
+    kept = rnnkit.training._cache.cache_dir()
+    rnnkit.compilation_cache(None)
+    try:
+        _pooled_equal_serial(sunspots, made)
+    finally:
+        rnnkit.compilation_cache(kept if kept is not None else None)
+
+
+def _pooled_equal_serial(sunspots, made):
     space = {"window": [4, 8], "activation": ["tanh", "relu"]}
     serial = sweep(sunspots, BASE, space, progress=False)
     seen = []
@@ -310,6 +321,8 @@ def test_interleave_takes_one_run_per_program_in_turn():
 
 
 def test_a_compilation_cache_of_the_callers_is_left_alone(monkeypatch, tmp_path):
+    # rnnkit's own cache off (as at import when the caller set up jax's): workers keep the caller's
+    monkeypatch.setattr(_runner._cache, "cache_dir", lambda: None)
     monkeypatch.setenv("JAX_COMPILATION_CACHE_DIR", str(tmp_path))
     assert _runner._shared_compile_cache() == ({}, None)
 

@@ -8,8 +8,16 @@ In our row-vector network a unit's incoming weights are a COLUMN of U, V and
 W (a_t = x_t U + h_{t-1} V + b, o_t = h_t W + c), so the columns are rescaled.
 
 Every point of the grid is evaluated by ONE jitted program: ``lax.map`` over
-the grid with a ``batch_size``, i.e. vmap over as many points at a time as
-fit in memory.
+the grid with a ``batch_size``, i.e. vmap over a block of points at a time.
+Each point runs its own forward pass that keeps only the state (and, many to
+many, a running sum of the loss terms): the model's ``loss`` keeps every
+step's state for its gradient, which for a block of points is tens of MB
+written and read again (``lax.map`` of ``loss`` measured 2.3-3.6 s on the
+demo's 15 x 15 surface, no faster than a loop of ``loss`` calls). The panel's
+surface and slice (266 points on the demo's 2604 validation windows of 24
+steps, H = 32) took 0.9 CPU seconds warm against 2.5 for the loop, 1.8
+against 2.9 cold (benchmarks/bench_first_result.py, side by side on a busy
+2-core machine). Its values equal ``loss`` to rounding (tests/test_diagnose.py).
 """
 from __future__ import annotations
 
@@ -21,10 +29,13 @@ import jax.numpy as jnp
 import numpy as np
 from jax import lax
 
-from ..recurrent._model import loss as model_loss
+from ..recurrent._cells import get_activation
 
-# Floats one grid point may use in a vmapped batch (states of every window).
-_BATCH_ELEMENTS = 2 ** 24
+# State floats (points x windows x hidden) of one block of points run together. Measured on
+# the demo (2604 windows, H = 32, 2 busy cores): blocks of 2**20 floats (12 points, 4 MiB
+# in float32) ran fastest; 2**22 and more were 2-3x slower (a block's states no longer
+# stay in the CPU's caches between steps).
+_BATCH_ELEMENTS = 2 ** 20
 _MATRICES = ("U", "V", "W")
 
 
@@ -61,13 +72,72 @@ def random_direction(key, params: dict) -> dict:
     return filter_normalised(raw, params)
 
 
+def _point_loss(p, xt, yt, m, w, count, *, act, task, mode):
+    """The model's loss at one point of the grid, keeping only the state.
+
+    Args:
+      p: params at the point.
+      xt: (T, B, I) time-major windows.  m: (T, B, 1) bool mask or None.
+      yt: targets, padded ones zeroed: regression (B, O) / (T, B, O), classification (B,) / (T, B).
+      w: counted terms, (B,) / (T, B) bool, or None (all count).
+      count: () number of counted terms (float).
+
+    Returns:
+      () the mean loss over counted terms, as ``recurrent.loss``.
+    """
+    phi = get_activation(act).value
+
+    def advance(h, x, mt):
+        new = phi(x @ p["U"] + h @ p["V"] + p["b"][None, :])  # (B, H)
+        return new if mt is None else jnp.where(mt, new, h)  # padded steps hold the state
+
+    def terms(h, y):  # (B, H), targets of one step -> (B,)
+        o = h @ p["W"] + p["c"][None, :]  # (B, O)
+        if task == "regression":
+            return jnp.mean(jnp.square(o - y), axis=-1)
+        picked = jnp.take_along_axis(o, y[:, None].astype(jnp.int32), axis=-1)[:, 0]
+        return jax.nn.logsumexp(o, axis=-1) - picked  # softmax cross-entropy
+
+    h0 = jnp.zeros((xt.shape[1], p["V"].shape[0]), xt.dtype)  # (B, H)
+    if mode == "many-to-one":
+        h, _ = lax.scan(lambda h, inp: (advance(h, inp[0], inp[1]), None), h0,
+                        (xt, m) if m is not None else (xt, None))
+        t = terms(h, yt)  # (B,)
+        return jnp.sum(t if w is None else jnp.where(w, t, jnp.zeros_like(t))) / count
+
+    def step(carry, inp):
+        h, total = carry
+        x, y, mt, wt = inp
+        h = advance(h, x, mt)
+        t = terms(h, y)
+        return (h, total + jnp.sum(t if wt is None else jnp.where(wt, t, jnp.zeros_like(t)))), None
+
+    (_, total), _ = lax.scan(step, (h0, jnp.zeros((), xt.dtype)), (xt, yt, m, w))
+    return total / count
+
+
 @partial(jax.jit, static_argnames=("act", "task", "mode", "batch"))
 def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch):
-    """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,)."""
+    """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,).
+
+    xs (B, T, I), ys and mask (B, T) or None as ``recurrent.loss`` takes them.
+    """
+    xt = jnp.swapaxes(xs, 0, 1)  # (T, B, I)
+    m = None if mask is None else jnp.swapaxes(mask, 0, 1)[:, :, None]  # (T, B, 1)
+    yt = ys if mode == "many-to-one" else jnp.swapaxes(ys, 0, 1)  # (B, ...) / (T, B, ...)
+    if m is None:
+        w = None
+        count = jnp.asarray(yt.shape[0] if mode == "many-to-one" else yt.shape[0] * yt.shape[1],
+                            xs.dtype)
+    else:
+        w = jnp.any(m[:, :, 0], axis=0) if mode == "many-to-one" else m[:, :, 0]  # (B,) / (T, B)
+        count = jnp.maximum(jnp.sum(w), 1).astype(xs.dtype)
+        # Padded targets may hold NaN or -1: zero them (they count for nothing).
+        yt = jnp.where(w if task == "classification" else w[..., None], yt, jnp.zeros_like(yt))
 
     def at(ab):
         p = {k: params[k] + ab[0] * d1[k] + ab[1] * d2[k] for k in params}
-        return model_loss(p, xs, ys, activation=act, task=task, mode=mode, mask=mask)
+        return _point_loss(p, xt, yt, m, w, count, act=act, task=task, mode=mode)
 
     return lax.map(at, points, batch_size=batch)
 
@@ -106,7 +176,11 @@ def _evaluate(result, split, d1, d2, points):
     x, y, mask = prepared.windows(split)
     n, T = x.shape[:2]
     width = max(int(np.shape(result.params["V"])[0]), x.shape[2])
-    batch = int(max(1, min(len(points), _BATCH_ELEMENTS // max(n * T * width, 1))))
+    batch = int(max(1, min(len(points), _BATCH_ELEMENTS // max(n * width, 1))))
+    # Whole blocks only (the last point repeated): lax.map compiles a second copy of the
+    # forward pass for a remainder (measured on the demo: 1.1-1.6 s to compile instead of 0.7-0.8 s).
+    n_points = len(points)
+    points = np.concatenate([points, np.repeat(points[-1:], -n_points % batch, axis=0)])
     with precision(cfg.dtype):
         p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in result.params.items()}
         d1 = {k: jnp.asarray(v, dtype) for k, v in d1.items()}
@@ -115,7 +189,7 @@ def _evaluate(result, split, d1, d2, points):
         values = _grid_losses(p, d1, d2, jnp.asarray(points, dtype), jnp.asarray(x, dtype), ys,
                               None if mask is None else jnp.asarray(mask), act=cfg.activation,
                               task=cfg.task, mode=cfg.mode, batch=batch)
-    return np.asarray(values, np.float64)
+    return np.asarray(values, np.float64)[:n_points]
 
 
 def _directions(result, seed, how_many):

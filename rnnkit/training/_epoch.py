@@ -26,7 +26,6 @@ from typing import NamedTuple
 import jax
 import jax.numpy as jnp
 import numpy as np
-import optax
 from jax import lax
 
 from ..recurrent._cells import init_elman_traceable
@@ -178,6 +177,8 @@ class EpochStats(NamedTuple):
 
 
 def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps):
+    import optax  # loaded by the first training, not by `import rnnkit` (about 0.1 s)
+
     # A placeholder value for each hyperparameter: updates read the real ones from the state.
     opt = make_optimizer(optimizer, clipping, dtype)(
         **hyperparams(optimizer, 1.0, 1.0 if clipping else None, 0.0, dtype))

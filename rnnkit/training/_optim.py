@@ -13,7 +13,6 @@ from typing import Dict, Tuple
 
 import jax.numpy as jnp
 import numpy as np
-import optax
 
 from ..data._config import OPTIMIZERS
 
@@ -22,6 +21,8 @@ MOMENTUM = 0.9  # heavy-ball coefficient of the "momentum" optimizer
 
 def _inner(name: str, learning_rate, weight_decay=None):
     # The optax transformation for one name; hyperparameters may be traced arrays.
+    import optax  # loaded by the first training, not by `import rnnkit` (about 0.1 s)
+
     if name == "sgd":
         return optax.sgd(learning_rate)
     if name == "momentum":
@@ -41,7 +42,7 @@ def program_key(optimizer: str, clip) -> Tuple[str, bool]:
     return optimizer, clip is not None
 
 
-def make_optimizer(optimizer: str, clipping: bool, dtype) -> optax.GradientTransformation:
+def make_optimizer(optimizer: str, clipping: bool, dtype) -> "optax.GradientTransformation":
     """``chain(clip_by_global_norm, optimizer)`` with injected hyperparameters.
 
     Args:
@@ -54,8 +55,9 @@ def make_optimizer(optimizer: str, clipping: bool, dtype) -> optax.GradientTrans
       a factory ``f(**hyperparams)`` whose result is a GradientTransformation; the
       keyword names are those of ``hyperparams(...)`` for the same arguments.
     """
-    name, _ = program_key(optimizer, None)
+    import optax  # loaded by the first training, not by `import rnnkit` (about 0.1 s)
 
+    name, _ = program_key(optimizer, None)
     if clipping:
         def factory(learning_rate, max_norm, weight_decay=None):
             return optax.chain(optax.clip_by_global_norm(max_norm),

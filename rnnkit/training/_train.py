@@ -24,7 +24,6 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
-from tqdm.auto import tqdm
 
 from . import _epoch
 from ..data._config import ACTIVATIONS, INITS, Config
@@ -247,6 +246,8 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         y_val = prepared.targets[prepared.target_rows("val")] if watch_accuracy else None
         best = ((math.inf, math.inf) if watch_accuracy else math.inf, 0, state[0])  # (watched, epoch, params)
         rows, status = [], "ok"
+        from tqdm.auto import tqdm  # on first use: it loads asyncio, which `import rnnkit` need not
+
         bar = tqdm(total=config.epochs, desc="training", unit="epoch", disable=not progress,
                    leave=False)
         try:
