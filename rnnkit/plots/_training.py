@@ -232,7 +232,9 @@ def class_forecast(pred: pd.DataFrame, *, ax=None) -> Figure:
     dated = base.is_datetime(x)
     xnum = mdates.date2num(x) if dated else x
     fig, ax = base.figure_and_axes(ax)
-    ax.stackplot(xnum, probs.T, colors=colours, labels=classes, alpha=0.85, linewidth=0)
+    # Steps, not ramps: each probability belongs to its own target (a time or a sequence).
+    ax.stackplot(xnum, probs.T, colors=colours, labels=classes, alpha=0.85, linewidth=0,
+                 step="mid")
     edges = _strip_edges(xnum)
     code_of = {c: k for k, c in enumerate(classes)}
     cmap = ListedColormap(colours)

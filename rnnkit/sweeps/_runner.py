@@ -12,6 +12,9 @@ from __future__ import annotations
 import concurrent.futures as cf
 import contextlib
 import datetime as _dt
+import io
+import json
+import math
 import multiprocessing
 import os
 import shutil
@@ -21,6 +24,7 @@ import time
 from typing import Callable, Dict, List, Optional, Sequence
 
 import jax
+import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
@@ -157,6 +161,36 @@ def flat_metrics(metrics: pd.DataFrame) -> Dict[str, float]:
     return out
 
 
+def pack_params(params: dict) -> bytes:
+    """A run's weights as compressed .npz bytes (plain arrays, no pickle)."""
+    buf = io.BytesIO()
+    np.savez_compressed(buf, **{k: np.asarray(v) for k, v in params.items()})
+    return buf.getvalue()
+
+
+def unpack_params(blob: bytes) -> dict:
+    """The weights dict from ``pack_params`` bytes (read with allow_pickle=False)."""
+    with np.load(io.BytesIO(blob), allow_pickle=False) as z:
+        return {k: z[k] for k in z.files}
+
+
+def pack_history(history: pd.DataFrame) -> str:
+    """A history frame as JSON text: column -> list of values (NaN as null)."""
+    cols = {str(c): [None if (isinstance(v, float) and not math.isfinite(v)) else v
+                     for v in history[c].tolist()] for c in history.columns}
+    return json.dumps(cols, allow_nan=False)
+
+
+def unpack_history(text: str) -> pd.DataFrame:
+    """The history frame from ``pack_history`` text (null back to NaN)."""
+    cols = json.loads(text)
+    frame = pd.DataFrame(cols)
+    for c in frame.columns:
+        if c != "epoch":
+            frame[c] = frame[c].astype(np.float64)
+    return frame
+
+
 def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
             x64: Optional[bool] = None) -> dict:
     """Fit one Config and return its outcome; a DataError becomes a "failed" outcome.
@@ -168,7 +202,9 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
         x64: jax's x64 mode to compute in (the parent's), so that a worker's
             numbers equal the parent's; None leaves it alone.
     Returns:
-        dict status, epochs, seconds, compiles, metrics ({name: float}), message.
+        dict status, epochs, seconds, compiles, metrics ({name: float}), message,
+        and for a trained run the kept weights: params (npz bytes), history (JSON
+        text), best_epoch.
     """
     if x64 is not None and bool(jax.config.jax_enable_x64) != x64:
         jax.config.update("jax_enable_x64", x64)
@@ -180,7 +216,9 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
                 "compiles": 0, "metrics": {}, "message": str(e)}
     return {"status": res.status, "epochs": int(len(res.history)),
             "seconds": time.perf_counter() - t0, "compiles": int(res.compiles),
-            "metrics": flat_metrics(res.metrics), "message": ""}
+            "metrics": flat_metrics(res.metrics), "message": "",
+            "params": pack_params(res.params), "history": pack_history(res.history),
+            "best_epoch": int(res.best_epoch)}
 
 
 def remote_run(df: pd.DataFrame, config: Config, shapes: Optional[dict], x64: bool,
@@ -275,7 +313,8 @@ def run(df: pd.DataFrame, configs: Sequence[Config], *, store=None, workers: int
         stop: a threading.Event; once set, no new run starts, runs in flight finish and are stored.
         on_run: called with each stored record (dict), in the calling thread.
     Returns:
-        the stored records of `configs`, in plan order (runs never started are absent).
+        the stored records of `configs`, in plan order (runs never started are absent);
+        a trained run's record also holds its kept weights (params, history, best_epoch).
     """
     store, owned = open_store(store)
     try:
@@ -325,6 +364,9 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run) -> List[
     finally:
         bar.close()
     got = store.get(keys)
+    kept = store.kept(got)
+    for k, w in kept.items():
+        got[k].update(w)
     return [got[k] for k in dict.fromkeys(keys) if k in got]
 
 

@@ -37,6 +37,16 @@ CREATE TABLE IF NOT EXISTS runs (
     message TEXT NOT NULL,      -- why a run failed ("" otherwise)
     finished TEXT NOT NULL      -- ISO-8601 UTC
 )"""
+# The weights a run ended with, so that a finished sweep can show any run without training
+# it again. A table of its own: stores written before it existed gain it on opening.
+_WEIGHTS = """
+CREATE TABLE IF NOT EXISTS weights (
+    key TEXT PRIMARY KEY,       -- the run's key in runs
+    params BLOB NOT NULL,       -- compressed .npz of U, V, b, W, c (read with allow_pickle=False)
+    history TEXT NOT NULL,      -- JSON object: history column -> list of values (null for NaN)
+    best_epoch INTEGER NOT NULL -- the epoch whose weights these are (0: the initial ones)
+)"""
+KEPT = ("params", "history", "best_epoch")  # a record's optional fields that go to `weights`
 FIELDS = ("key", "config", "fingerprint", "status", "epochs", "seconds", "compiles",
           "metrics", "message", "finished")
 
@@ -90,6 +100,7 @@ class RunStore:
                     self._db.execute("PRAGMA journal_mode=WAL")
                 self._db.execute("PRAGMA synchronous=FULL")
                 self._db.execute(_TABLE)
+                self._db.execute(_WEIGHTS)
                 self._db.execute("CREATE TABLE IF NOT EXISTS layout (version INTEGER NOT NULL)")
                 row = self._db.execute("SELECT version FROM layout").fetchone()
                 if row is None:
@@ -114,9 +125,15 @@ class RunStore:
                json.dumps({k: _json_number(v) for k, v in record["metrics"].items()}, allow_nan=False),
                str(record.get("message") or ""),
                record.get("finished") or _now())
-        with self._lock, self._db:  # the with-block commits before returning
+        kept = None
+        if record.get("params") is not None:
+            kept = (record["key"], sqlite3.Binary(bytes(record["params"])),
+                    str(record.get("history") or "{}"), int(record.get("best_epoch") or 0))
+        with self._lock, self._db:  # the with-block commits both rows before returning
             self._db.execute(f"INSERT OR REPLACE INTO runs ({', '.join(FIELDS)}) "
                              f"VALUES ({', '.join('?' * len(FIELDS))})", row)
+            if kept is not None:
+                self._db.execute("INSERT OR REPLACE INTO weights VALUES (?, ?, ?, ?)", kept)
 
     # --- reading ---
     def keys(self) -> set:
@@ -134,6 +151,19 @@ class RunStore:
                 q = f"SELECT {', '.join(FIELDS)} FROM runs WHERE key IN ({', '.join('?' * len(part))})"
                 for row in self._db.execute(q, part):
                     out[row[0]] = self._record(row)
+        return out
+
+    def kept(self, keys: Iterable[str]) -> Dict[str, dict]:
+        """The kept weights of the given keys: {key: {"params": npz bytes, "history": JSON
+        text, "best_epoch": int}} (runs stored without weights are left out)."""
+        keys = list(keys)
+        out = {}
+        with self._lock:
+            for at in range(0, len(keys), 500):
+                part = keys[at:at + 500]
+                q = f"SELECT key, params, history, best_epoch FROM weights WHERE key IN ({', '.join('?' * len(part))})"
+                for k, params, history, best in self._db.execute(q, part):
+                    out[k] = {"params": bytes(params), "history": history, "best_epoch": int(best)}
         return out
 
     def records(self) -> List[dict]:
