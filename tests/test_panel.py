@@ -513,6 +513,7 @@ def test_sliders_scrub_through_a_finished_sweep_without_training(demo, start, tm
     c["activation"].value = "relu"
     assert p.wait(WAIT)
     assert (c["hidden"].value, c["window"].value) == (6, 8)
+    assert (c["hidden_value"].value, c["window_value"].value) == (6, 8)  # the boxes follow
     row = r.table.query("window == 8 and hidden == 6 and activation == 'relu'").iloc[0]
     assert p.shown_run == row["key"]
     shown = p.result

@@ -99,6 +99,8 @@ def _paired(slider: widgets.Widget, name: str, typed: widgets.Widget, c: dict) -
                 slider.value = max(v, slider.min)
         finally:
             busy.clear()
+        # What the slider ended on (an observer may have moved it on, e.g. onto a sweep's grid).
+        typed.value = _typed_of(slider)
 
     slider.observe(to_typed, names="value")
     typed.observe(to_slider, names="value")
@@ -257,9 +259,9 @@ def build_controls(df: pd.DataFrame, config: Config) -> dict:
     _range_controls(c, "sweep_hidden", "hidden units", widgets.IntRangeSlider(
         value=(max(1, h // 2), max(2, 2 * h)), min=1, max=max(256, 2 * h)), 3)
     e = math.log10(config.lr)
-    _range_controls(c, "sweep_lr", "learning rate 10^", widgets.FloatRangeSlider(
+    _range_controls(c, "sweep_lr", "lr, 10^x", widgets.FloatRangeSlider(
         value=(round(e, 2), round(min(e + 1, 0.0), 2)), min=-5.0, max=0.0, step=0.05,
-        readout_format=".2f"), 1)
+        readout_format=".1f"), 1)
 
     def follow_lr(change):  # one learning rate in the grid: the model's own
         if c["sweep_lr_count"].value == 1 and change["new"] > 0:

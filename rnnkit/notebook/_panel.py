@@ -215,7 +215,8 @@ class Panel:
                                 "them (interpolate, ffill) or refuse them (error).</div>")
             note.add_class("rnnkit-gaps")
             first = [note, c["missing"]]
-        network = [widgets.HBox([pair_box(c, "window"), c["window_full"]]), c["horizon"],
+        c["window_full"].layout.margin = "0 0 2px 100px"
+        network = [pair_box(c, "window"), c["window_full"], c["horizon"],
                    pair_box(c, "hidden"), c["activation"]]
         if "cell" in c:
             network.append(c["cell"])
@@ -375,6 +376,9 @@ class Panel:
         if not still():
             return
         self.views.show_surfaces(result, made)
+        if still():  # the run is named in the status and on every figure; the line stays short
+            self.progress_label.value = "every page drawn" + (f" ({made.split('—')[-1].strip()})"
+                                                              if "—" in made else "")
 
     # --- train ---
     def _start_train(self) -> None:
@@ -588,6 +592,7 @@ class Panel:
                  f"{r.metric} {r.table[r.metric].iloc[row]:.4g}.")
         if say:
             self._say("info", shown)
+            self.progress_label.value = f"drawing sweep run {row + 1} of {len(r.table)}..."
         else:
             self.progress_label.value = shown
         self._request_view(lambda: r.result(key), made)
