@@ -242,7 +242,7 @@ def test_class_forecast_stacks_probabilities_and_draws_strips():
     expected = np.unique(np.round(np.r_[0.0, pred.filter(like="p_").iloc[:, 0]], 12))
     np.testing.assert_array_equal(levels, expected)
     xs = first[:, 0]
-    assert len(np.unique(np.round(xs, 9))) > len(pred)  # mid-point steps add the edges between
+    assert len(np.unique(np.round(xs, 9))) == len(pred) + 1  # one cell per target, edge to edge
     strips = [c for c in ax.collections if isinstance(c, QuadMesh)]
     assert len(strips) == 2
     codes = {"normal": 0, "belt_slip": 1, "bearing_wear": 2}

@@ -261,8 +261,9 @@ class FigureViews:
         column = score_column(metrics, cfg.task)
         self._current("Scores")
         if classify:
-            self._note("Scores", f"Every model scored on the same held-out {what}: accuracy, "
-                                 "balanced accuracy and log loss (lower is better).")
+            self._note("Scores", f"Every model scored on the same held-out {what}: accuracy "
+                                 "and balanced accuracy (higher is better), log loss (lower is "
+                                 "better).")
         else:
             self._note("Scores", "Every model scored on the same targets, in the target's own "
                                  "units (MASE: against the in-sample naive forecast).")
@@ -276,8 +277,13 @@ class FigureViews:
             per = "one step per held-out sequence" if result.prepared.full else "held-out range"
             self._note("Forecast", f"Class probabilities, {per}, with the actual and the "
                                    "predicted class in the strips above.")
-            self._draw("Forecast", "forecast", lambda: sized("forecast", plots.class_forecast, pred,
-                                                             caption=caption))
+            def make_classes():
+                fig = sized("forecast", plots.class_forecast, pred, caption=caption)
+                if result.prepared.full:  # one target per sequence, named by its id
+                    fig.axes[0].set_xlabel(f"sequence ({pred.index.name or 'id'})")
+                return fig
+
+            self._draw("Forecast", "forecast", make_classes)
         else:
             base_name, base = baseline_series(result, pred.index)
             self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
