@@ -440,9 +440,14 @@ def test_curve_and_scores_come_first_then_each_slower_page(demo, start):
         img.observe(lambda ch, name=name: order.append(name) if ch["new"] else None, names="value")
     p.views.images["training"].observe(
         lambda ch: surface_note.append(p.views.notes["Surface"].value), names="value")
-    p.phase.observe(lambda ch: phases.append(p.phase_now), names="value")
+    bar = []
+    p.phase.observe(lambda ch: (phases.append(p.phase_now),
+                                bar.append((p.progress.value, p.progress.bar_style))),
+                    names="value")
     _press(p, p.train_button)
     assert phases == ["compiling", "training", "figures", None]  # compiling is its own phase
+    # ... with its own slot of the bar, in its own colour: not an empty bar while it lasts.
+    assert bar[0] == (1, "warning") and p.progress.max == 2 + 1 and p.progress.value == 3
     assert order.index("training") < order.index("gradient") < order.index("surface")
     assert order.index("scores") < order.index("gradient")
     # When the curve appears, the slower pages already say they are computing.
@@ -622,7 +627,7 @@ def test_a_script_that_exits_while_the_panel_trains_ends_cleanly(tmp_path):
         "                                   patience=None, batch_size=16))\n"
         "p = w.panel\n"
         "p.train_button.click()\n"
-        "while p.progress.value < 1:\n"  # inside the compiled training loop
+        "while p.progress.value < 2:\n"  # past the compiling slot: inside the training loop
         "    time.sleep(0.05)\n"
         "print('leaving at epoch', p.progress.value, flush=True)\n")
     env = dict(__import__("os").environ)

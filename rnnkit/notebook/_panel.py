@@ -305,12 +305,12 @@ class Panel:
         return ("<div style='font-size:12px'>" + " &rarr; ".join(parts) + "</div>")
 
     def _set_phase(self, now: Optional[str]) -> None:
-        self.phase_now = now
-        self.phase.value = self._phase_html(now)
-        if now == "compiling":  # the bar sits striped in its own colour until the first epoch
+        if now == "compiling":  # the bar's first slot, in its own colour until the first epoch
             self.progress.bar_style = "warning"
         elif now == "training":
             self.progress.bar_style = "info"
+        self.phase_now = now
+        self.phase.value = self._phase_html(now)
 
     # --- background work ---
     def _run(self, label: str, job: Callable[[], None]) -> None:
@@ -385,8 +385,9 @@ class Panel:
         cfg = self._checked_config()
         if cfg is None:
             return
-        self.progress.max = cfg.epochs
-        self.progress.value = 0
+        # The bar's first slot is the compiling phase (amber while it lasts), then one per epoch.
+        self.progress.max = cfg.epochs + 1
+        self.progress.value = 1
         self.shown_run = None
         self._quiet = True
         self.browse.value = False  # the trained run is shown; tick the box to browse the sweep again
@@ -402,8 +403,9 @@ class Panel:
         epoch = int(row["epoch"])
         if epoch == 1:
             self._set_phase("training")
-        self.progress.value = min(epoch, self.progress.max)
-        self.progress_label.value = (f"epoch {epoch}/{self.progress.max}  train {row['train_loss']:.4g}"
+        epochs = self.progress.max - 1  # the first slot was the compiling phase
+        self.progress.value = min(epoch + 1, self.progress.max)
+        self.progress_label.value = (f"epoch {epoch}/{epochs}  train {row['train_loss']:.4g}"
                                      f"  val {row['val_loss']:.4g}")
 
     def _train(self, cfg: Config) -> None:
