@@ -1,15 +1,19 @@
 """One real-browser test: JupyterLab + Debian's Chromium driven by Playwright.
 
 It proves the whole path the headless tests cannot: the quickstart notebook
-runs in a real kernel, the panel renders in the page, a typed value reaches
-the kernel, the Train button starts a background fit whose figure appears,
-and the Save JSON button writes a file that ``rnnkit.load_config`` reads back.
-It also saves the screenshot shown in the README (docs/panel.png).
+runs in a real kernel, the panel renders in the page, a slider moved with
+the keyboard and a typed value reach the kernel, the Train button starts a
+background fit whose figure appears, Save writes a file that
+``rnnkit.load_config`` reads back, a sweep runs from the grid's sliders and
+lists, and the same controls then scrub through the sweep's runs. It also
+saves the screenshot shown in the README (docs/panel.png), and others in the
+test's temporary folder (shots/) for a person to look at.
 
 Skipped only when /usr/bin/chromium or the playwright package is missing.
 """
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -88,9 +92,18 @@ def lab(tmp_path):
         log.close()
 
 
-@pytest.mark.timeout(600)
-def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
+def _shot(page, locator, path: Path) -> None:
+    """A screenshot of `locator`, written atomically (the README's picture among them)."""
+    page.wait_for_timeout(600)  # let a tab switch or a new image paint
+    path.parent.mkdir(parents=True, exist_ok=True)
+    write_bytes(path, locator.screenshot())
+
+
+@pytest.mark.timeout(900)
+def test_quickstart_panel_trains_sweeps_and_scrubs_in_a_real_browser(lab):
     export_path = lab["dir"] / "from_browser.json"
+    winner_path = lab["dir"] / "winner.json"
+    shots = lab["dir"] / "shots"  # the other screenshots, for a person to look at
     with sync_api.sync_playwright() as p:
         browser = p.chromium.launch(
             executable_path=CHROMIUM, headless=True,
@@ -112,35 +125,105 @@ def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
                 page.wait_for_timeout(300)
             panel = page.locator(".rnnkit-panel")
             panel.wait_for(state="visible", timeout=180_000)
+            status = page.locator(".rnnkit-status")
+            # Lab's news question covers the bottom right of the screenshots: answer it.
+            no = page.locator(".jp-toast-button", has_text="No")
+            if no.count():
+                no.first.click()
+            # The demo frame has gaps: the panel says so on the first tab, where the policy is.
+            assert "missing values" in page.locator(".rnnkit-gaps").inner_text()
+            assert page.locator(".rnnkit-settings .lm-TabBar-tab.lm-mod-current").inner_text() == "Model"
 
-            # Change a control in the page: 4 epochs instead of the notebook's 3.
-            epochs = page.locator(".rnnkit-epochs input")
-            epochs.fill("4")
-            epochs.press("Enter")
-            page.locator(".rnnkit-hidden input").click()  # blur: the value syncs to the kernel
+            # A slider moved with the keyboard: its typed box follows (epochs 3 -> 5).
+            handle = page.locator(".rnnkit-epochs .noUi-handle")
+            handle.focus()
+            handle.press("ArrowRight")
+            handle.press("ArrowRight")
+            epochs_box = page.locator(".rnnkit-epochs-value input")
+            page.wait_for_function(
+                "() => document.querySelector('.rnnkit-epochs-value input').value === '5'",
+                timeout=30_000)
+            # A typed value: 4 epochs, and the slider follows it in the kernel.
+            epochs_box.fill("4")
+            epochs_box.press("Enter")
+            page.locator(".rnnkit-hidden-value input").click()  # blur: the value syncs
 
             page.locator("button.rnnkit-train").click()
-            status = page.locator(".rnnkit-status")
             status.get_by_text("Trained 4 epochs").wait_for(timeout=240_000)
             # The training-curve figure is an <img> whose PNG has loaded in the page.
             img = page.locator("img.rnnkit-fig-training")
             img.wait_for(state="visible", timeout=30_000)
             width = img.evaluate("el => el.complete ? el.naturalWidth : 0")
             assert width > 200, "the training-curve PNG did not load in the page"
-
-            # The job ends after the loss surface is drawn; then the README screenshot.
-            page.locator(".rnnkit-panel .widget-label", has_text="done:").wait_for(timeout=240_000)
-            page.locator(".rnnkit-pages .lm-TabBar-tab", has_text="Forecast").click()
-            page.locator("img.rnnkit-fig-forecast").wait_for(state="visible", timeout=30_000)
-            page.wait_for_timeout(500)  # let the tab switch paint
-            SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
-            write_bytes(SCREENSHOT, panel.screenshot())
+            page.locator(".rnnkit-progress-label", has_text="done:").wait_for(timeout=240_000)
+            _shot(page, panel, shots / "trained.png")
+            # The page's own stylesheet (plain CSS from the panel, no script) greys a figure
+            # marked as previous; the test adds and removes the class itself to read it.
+            opacity = page.evaluate(
+                "() => { const i = document.querySelector('img.rnnkit-fig-training');"
+                " i.classList.add('rnnkit-previous'); const o = getComputedStyle(i).opacity;"
+                " i.classList.remove('rnnkit-previous'); return o; }")
+            assert opacity == "0.4"
 
             page.locator(".rnnkit-path input").fill(str(export_path))
             page.locator(".rnnkit-path input").press("Tab")
             page.locator("button.rnnkit-export").click()
             status.get_by_text("Wrote the current settings").wait_for(timeout=30_000)
             assert page.locator(".rnnkit-document").inner_text().count('"epochs": 4') == 1
+
+            # The grid: a how-many slider rewrites the list it shows; a typed list is taken.
+            page.locator(".rnnkit-settings .lm-TabBar-tab", has_text="Grid").click()
+            windows = page.locator(".rnnkit-sweep-windows input")
+            before = windows.input_value()
+            count = page.locator(".rnnkit-sweep-windows-count .noUi-handle")
+            count.focus()
+            count.press("ArrowLeft")  # 3 values -> 2
+            page.wait_for_function(
+                "() => document.querySelector('.rnnkit-sweep-windows input').value.split(',')"
+                ".length === 2", timeout=30_000)
+            assert windows.input_value() != before
+            _shot(page, panel, shots / "grid.png")
+            for box, text in ((".rnnkit-sweep-windows", "12, 24"), (".rnnkit-sweep-hidden", "4, 8"),
+                              (".rnnkit-sweep-seeds", "1")):
+                page.locator(f"{box} input").fill(text)
+                page.locator(f"{box} input").press("Tab")
+            page.locator("button.rnnkit-sweep").click()
+            status.get_by_text("Sweep finished: 8 runs").wait_for(timeout=480_000)
+            page.locator(".rnnkit-progress-label", has_text="every page drawn").wait_for(
+                timeout=240_000)
+            _shot(page, panel, shots / "sweep.png")
+
+            # Scrub: the same controls pick another run of the grid; every page switches.
+            page.locator(".rnnkit-settings .lm-TabBar-tab", has_text="Model").click()
+            shown = page.locator(".rnnkit-activation select").input_value()
+            other = "relu" if shown == "tanh" else "tanh"
+            page.locator(".rnnkit-activation select").select_option(other)
+            status.get_by_text(f"{other} units").wait_for(timeout=60_000)
+            run = re.search(r"sweep run \d+ of 8", status.inner_text()).group(0)
+            page.locator(".rnnkit-progress-label", has_text=f"every page drawn ({run})").wait_for(
+                timeout=240_000)
+            hidden = page.locator(".rnnkit-hidden-value input")
+            hidden.fill("7")  # off the grid: snaps to 8 on a log scale
+            hidden.press("Enter")
+            page.wait_for_function(
+                "() => document.querySelector('.rnnkit-hidden-value input').value === '8'",
+                timeout=60_000)
+            status.get_by_text(f"8 {other} units").wait_for(timeout=60_000)
+            run = re.search(r"sweep run \d+ of 8", status.inner_text()).group(0)
+            page.locator(".rnnkit-progress-label", has_text=f"every page drawn ({run})").wait_for(
+                timeout=240_000)
+            for name, file in (("Surface", "surface.png"), ("States", "states.png"),
+                               ("Gradients", "gradients.png"), ("Scores", "scores.png")):
+                page.locator(".rnnkit-pages .lm-TabBar-tab", has_text=name).click()
+                _shot(page, panel, shots / file)
+            page.locator(".rnnkit-pages .lm-TabBar-tab", has_text="Forecast").click()
+            page.locator("img.rnnkit-fig-forecast").wait_for(state="visible", timeout=30_000)
+            _shot(page, panel, SCREENSHOT)
+
+            page.locator(".rnnkit-path input").fill(str(winner_path))
+            page.locator(".rnnkit-path input").press("Tab")
+            page.locator("button.rnnkit-export-best").click()
+            status.get_by_text("Wrote the sweep winner").wait_for(timeout=30_000)
         finally:
             browser.close()
 
@@ -150,3 +233,6 @@ def test_quickstart_panel_trains_and_exports_in_a_real_browser(lab):
     assert cfg == rnnkit.Config(target="load_kw", missing="interpolate", window=24,
                                 hidden=8, epochs=4, batch_size=32,
                                 features=("outdoor_temp_c", "doors_open"))
+    best = rnnkit.load_config(winner_path)
+    assert best.window in (12, 24) and best.hidden in (4, 8) and best.epochs == 4
+    assert best.activation in ("tanh", "relu") and best.seed == 0

@@ -237,6 +237,14 @@ def test_class_forecast_stacks_probabilities_and_draws_strips():
     # The top of the stack is 1 everywhere (probabilities sum to one).
     top = stacks[-1].get_paths()[0].vertices[:, 1]
     np.testing.assert_allclose(top.max(), 1.0, **EXACT64)
+    # Steps, not ramps: each probability holds flat over its own target, so the top edge of
+    # the first class's area takes exactly the class's probabilities as its levels.
+    first = stacks[0].get_paths()[0].vertices
+    levels = np.unique(np.round(first[:, 1], 12))
+    expected = np.unique(np.round(np.r_[0.0, pred.filter(like="p_").iloc[:, 0]], 12))
+    np.testing.assert_array_equal(levels, expected)
+    xs = first[:, 0]
+    assert len(np.unique(np.round(xs, 9))) == len(pred) + 1  # one cell per target, edge to edge
     strips = [c for c in ax.collections if isinstance(c, QuadMesh)]
     assert len(strips) == 2
     codes = {"normal": 0, "belt_slip": 1, "bearing_wear": 2}

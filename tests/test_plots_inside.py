@@ -126,6 +126,24 @@ def test_loss_surface_contours_the_values_and_marks_the_trained_point():
     assert ax.get_xlim() == (ALPHAS[0], ALPHAS[-1]) and ax.get_ylim() == (BETAS[0], BETAS[-1])
 
 
+def test_clipped_loss_surface_gives_the_basin_the_colours():
+    # A steep bowl: without the clip, most colour levels go to the walls.
+    v = 0.1 + 50.0 * (ALPHAS[None, :] ** 2 + BETAS[:, None] ** 2) ** 2
+    fig = plots.loss_surface(ALPHAS, BETAS, v, clip=0.5)
+    ax = fig.axes[0]
+    filled = ax.collections[0]
+    top = np.quantile(v, 0.5)  # numpy's quantile as the reference for where the scale ends
+    np.testing.assert_allclose(filled.levels[-1], top, rtol=1e-12)
+    np.testing.assert_allclose(filled.levels, np.geomspace(v.min(), top, 16), rtol=1e-12)
+    assert filled.extend == "max" and filled.norm.__class__.__name__ == "LogNorm"
+    # The marker's legend lies outside the plot (below it), not over the surface.
+    fig.canvas.draw()
+    legend = ax.get_legend().get_window_extent()
+    assert legend.y1 <= ax.get_window_extent().y0
+    with pytest.raises(ValueError, match="clip"):
+        plots.loss_surface(ALPHAS, BETAS, v, clip=1.5)
+
+
 def test_loss_surface_refuses_bad_shapes():
     with pytest.raises(ValueError, match="transpose"):
         plots.loss_surface(ALPHAS, BETAS, SURFACE.T)

@@ -98,3 +98,37 @@ def test_refusals(tmp_path):
         RunStore(42)
     with RunStore(None) as store, pytest.raises(ValueError, match="lacks"):
         store.put({"key": "k"})
+
+
+def test_kept_weights_go_with_their_row_and_old_stores_gain_the_table(tmp_path):
+    import io
+
+    import numpy as np
+
+    from rnnkit.sweeps._runner import pack_history, pack_params, unpack_history, unpack_params
+
+    path = tmp_path / "old.sqlite"
+    # A store written before weights were kept: the runs table and layout only.
+    with RunStore(path) as store:
+        store.put(_record(Config(hidden=3)))
+    db = sqlite3.connect(path)
+    db.execute("DROP TABLE weights")
+    db.commit()
+    db.close()
+    params = {"U": np.arange(6, dtype=np.float32).reshape(2, 3), "c": np.array([0.5])}
+    import pandas as pd
+    history = pd.DataFrame({"epoch": [1, 2], "train_loss": [0.5, float("nan")]})
+    with RunStore(path) as store:  # opening adds the weights table
+        assert store.kept([run_key(Config(hidden=3), FP)]) == {}
+        rec = _record(Config(hidden=4))
+        rec.update(params=pack_params(params), history=pack_history(history), best_epoch=2)
+        store.put(rec)
+        kept = store.kept([rec["key"], run_key(Config(hidden=3), FP)])
+    assert list(kept) == [rec["key"]] and kept[rec["key"]]["best_epoch"] == 2
+    # The blob is a plain .npz: numpy reads it without pickle.
+    with np.load(io.BytesIO(kept[rec["key"]]["params"]), allow_pickle=False) as z:
+        np.testing.assert_array_equal(z["U"], params["U"])
+    back = unpack_params(kept[rec["key"]]["params"])
+    assert set(back) == {"U", "c"} and back["c"].dtype == np.float64
+    h = unpack_history(kept[rec["key"]]["history"])
+    assert h["epoch"].tolist() == [1, 2] and h["train_loss"][0] == 0.5 and np.isnan(h["train_loss"][1])

@@ -22,7 +22,7 @@ from rnnkit import Config, DataError
 from rnnkit.sweeps import _runner
 from rnnkit.sweeps._plan import plan
 from rnnkit.sweeps._sweep import _check_metric, sweep
-from tolerances import OTHER_PROCESS, SAME_RUN
+from tolerances import OTHER_PROCESS, PADDED32, SAME_RUN
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -371,3 +371,47 @@ def test_classification_sweep_ranks_by_log_loss():
     assert s["val_log_loss"].is_monotonic_increasing and res.best().activation == s["activation"][0]
     res.metric = "val_accuracy"  # higher is better
     assert res.summary()["val_accuracy"].is_monotonic_decreasing
+
+
+# ---------------------------------------------------------------- kept weights
+
+
+def test_a_run_is_rebuilt_from_its_kept_weights(sunspots, tmp_path):
+    from sklearn.metrics import mean_squared_error
+
+    from rnnkit.sweeps._store import RunStore
+
+    path = tmp_path / "kept.sqlite"
+    space = {"window": [4, 8], "activation": ["tanh", "relu"]}
+    res = sweep(sunspots, BASE, space, store=path, progress=False)
+    t = res.table
+    for i in range(len(t)):
+        r = res.result(i)
+        assert (r.config.window, r.config.activation) == (t["window"][i], t["activation"][i])
+        assert r.status == t["status"][i]
+        assert len(r.history) == t["epochs"][i] == 2
+        # Scored again from the kept weights, without training: the sweep's own numbers.
+        np.testing.assert_allclose(r.metrics.loc["rnn", "val_rmse"], t["val_rmse"][i], **SAME_RUN)
+        # ... and scikit-learn's RMSE over the rebuilt run's validation predictions agrees
+        # (scikit-learn as the outside reference).
+        val = r.predict().query("split == 'val'")
+        rmse = mean_squared_error(val["actual"], val["predicted"]) ** 0.5
+        np.testing.assert_allclose(rmse, t["val_rmse"][i], rtol=1e-6)
+    # The winner (None) is the best run; fitting its config again gives the kept weights.
+    best = res.result()
+    again = rnnkit.fit(sunspots, res.best(), progress=False)
+    assert best.config == again.config  # resolved alike (target, features, season filled in)
+    for name, w in again.params.items():
+        np.testing.assert_allclose(best.params[name], w, **PADDED32)
+    # The weights are in the store file, as compressed npz read with allow_pickle=False.
+    with RunStore(path) as store:
+        kept = store.kept(t["key"])
+    assert set(kept) == set(t["key"]) and all(k["best_epoch"] in (0, 1, 2) for k in kept.values())
+    # A second sweep over the same store runs nothing and still rebuilds every run.
+    res2 = sweep(sunspots, BASE, space, store=path, progress=False)
+    assert (res2.table["compiles"] == t["compiles"]).all()
+    np.testing.assert_array_equal(res2.result(3).params["V"], res.result(3).params["V"])
+    with pytest.raises(IndexError, match="0..3"):
+        res.result(4)
+    with pytest.raises(ValueError, match="not a run of this sweep"):
+        res.result("nope")

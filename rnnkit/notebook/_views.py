@@ -30,10 +30,33 @@ SIZES = {"training": WIDE, "forecast": WIDE, "gradient": HALF, "spectrum": HALF,
          "scores": (7.0, 2.9)}
 
 
-def sized(name: str, builder: Callable[..., Figure], *args, **kwargs) -> Figure:
-    """``builder(*args, **kwargs)`` drawn into a fresh Figure of the page's size for `name`."""
+def sized(name: str, builder: Callable[..., Figure], *args, caption: str = "", **kwargs) -> Figure:
+    """``builder(*args, **kwargs)`` drawn into a fresh Figure of the page's size for `name`;
+    `caption` (what made the figure: settings and run) goes along its top in small grey type."""
     fig = Figure(figsize=SIZES[name], layout="constrained")
-    return builder(*args, ax=fig.add_subplot(), **kwargs)
+    fig = builder(*args, ax=fig.add_subplot(), **kwargs)
+    if caption:
+        fig.suptitle(caption, x=0.01, ha="left", fontsize=7.5, color="#666666")
+    return fig
+
+
+def plural(n: int, word: str, many: str = "") -> str:
+    """'1 seed', '2 seeds' (`many` when the plural is not word + 's')."""
+    return f"{n} {word if n == 1 else (many or word + 's')}"
+
+
+def caption(config, run: str = "") -> str:
+    """What made a figure, in one line: the settings that shape a network, and which run."""
+    window = "whole sequences" if config.window == "full" else f"window {config.window}"
+    cell = getattr(config, "cell", None)
+    parts = [window, f"{config.hidden} {config.activation} {cell + ' ' if cell else ''}units",
+             f"lr {config.lr:.2g}", f"{plural(config.epochs, 'epoch')} max", f"seed {config.seed}"]
+    return " · ".join(parts) + (f"  —  {run}" if run else "")
+
+
+def windows_word(result) -> str:
+    """'sequences' when each example is a whole sequence, else 'windows'."""
+    return "sequences" if result.prepared.full else "windows"
 
 
 def render(fig: Figure) -> bytes:
@@ -66,7 +89,7 @@ def _cell(v) -> str:
     return html.escape(str(v))
 
 
-def _table_html(df: pd.DataFrame, caption: str) -> str:
+def _table_html(df: pd.DataFrame, title: str) -> str:
     """A compact HTML table (index as the first column, numbers to 4 significant digits).
 
     Inline styles only, so that it looks the same in JupyterLab, classic
@@ -81,8 +104,10 @@ def _table_html(df: pd.DataFrame, caption: str) -> str:
         cells = "".join(f"<td style='{pad}text-align:right'>{_cell(v)}</td>" for v in row)
         rows.append(f"<tr style='background:{bg}'><td style='{pad}text-align:left;font-weight:600'>"
                     f"{_cell(label)}</td>{cells}</tr>")
-    return (f"<div style='font-weight:600;margin:8px 0 4px'>{html.escape(caption)}</div>"
-            "<div style='overflow-x:auto'><table style='border-collapse:collapse;font-size:12px;"
+    return (f"<div style='font-weight:600;margin:8px 0 4px'>{html.escape(title)}</div>"
+            # the table scrolls inside its own box, both ways, instead of being cut off
+            "<div class='rnnkit-table-box' style='overflow:auto;max-height:300px;max-width:100%;"
+            "border:1px solid #e3e3e3'><table style='border-collapse:collapse;font-size:12px;"
             f"line-height:1.5'><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody>"
             "</table></div>")
 
@@ -93,8 +118,25 @@ def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
     return widgets.HBox([a, b], layout=widgets.Layout(width="100%", align_items="flex-start"))
 
 
+# Opacity of a figure that belongs to an earlier run (a new one is training or being drawn).
+# Plain CSS in the page, no JavaScript.
+STYLE = ("<style>.rnnkit-previous img, img.rnnkit-previous {opacity: 0.4; filter: grayscale(60%);}"
+         "</style>")
+# Which images each page shows (for the notes and for marking a page as previous).
+PAGE_IMAGES = {"Training": ("training",), "Forecast": ("forecast",),
+               "Gradients": ("gradient", "spectrum"), "States": ("heatmap", "path"),
+               "Surface": ("surface", "slice"), "Sweep": ("sweep",), "Scores": ("scores",)}
+SURFACE_CLIP = 0.8  # the colour scale ends at this quantile of the surface: the basin gets the colours
+
+
 class FigureViews:
-    """The right-hand pages of the panel: one ipywidgets.Tab of figures and tables."""
+    """The right-hand pages of the panel: one ipywidgets.Tab of figures and tables.
+
+    A run is drawn in three steps, fastest first: ``show_fast`` (training
+    curve, scores, forecast), ``show_inside`` (gradients, states: measures the
+    diagnostics) and ``show_surfaces`` (loss surfaces). Pages not drawn yet say
+    they are computing; figures of an earlier run are marked as previous.
+    """
 
     PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Scores", "JSON")
 
@@ -106,9 +148,11 @@ class FigureViews:
         self.notes["Sweep"].value = self.notes["Sweep"].value.replace("Train", "Sweep")
         self.notes["JSON"].value = self.notes["JSON"].value.replace(
             "Press Train to draw this page.", "Save or load a config to show its JSON here.")
+        for page, note in self.notes.items():
+            note.add_class("rnnkit-note-" + page.lower())
         self.window_slider = widgets.IntSlider(
             description="window #", min=0, max=0, value=0, continuous_update=False,
-            style={"description_width": "70px"}, layout=widgets.Layout(width="420px"))
+            style={"description_width": "80px"}, layout=widgets.Layout(width="420px"))
         self.window_slider.add_class("rnnkit-window-slider")
         self.sweep_x = widgets.Dropdown(description="across", options=(),
                                         layout=widgets.Layout(width="220px"))
@@ -123,6 +167,8 @@ class FigureViews:
         self.document.add_class("rnnkit-document")
         self.result = None
         self.sweep_result = None
+        self.caption = ""  # what made the figures now shown
+        self.previous = set()  # pages whose figures belong to an earlier run
         self._quiet = False  # True while the slider is being reset with a new result
 
         i = self.images
@@ -141,7 +187,8 @@ class FigureViews:
                       for p, kids in pages.items()],
             titles=self.PAGES, layout=widgets.Layout(flex="1 1 auto", min_width="560px"))
         self.tab.add_class("rnnkit-pages")
-        self.widget = self.tab
+        self.widget = widgets.VBox([widgets.HTML(STYLE), self.tab],
+                                   layout=widgets.Layout(flex="1 1 auto", min_width="560px"))
         self.window_slider.observe(self._on_window, names="value")
         self.sweep_x.observe(self._on_axes, names="value")
         self.sweep_y.observe(self._on_axes, names="value")
@@ -149,7 +196,7 @@ class FigureViews:
     def select(self, page: str) -> None:
         self.tab.selected_index = self.PAGES.index(page)
 
-    # --- a trained network ---
+    # --- a figure and its page ---
     def _draw(self, page: str, image: str, make: Callable[[], Figure]) -> bool:
         """Render one figure into its image; a failure blanks it and says why on its page."""
         try:
@@ -168,21 +215,75 @@ class FigureViews:
         if png:  # never scaled up past its own pixels: text keeps its size
             img.layout.max_width = f"{png_width(png)}px"
 
-    def show_fit(self, result) -> None:
-        """Draw every page of one FitResult except the loss surfaces (called in the worker thread)."""
-        self.result = result
+    def _current(self, page: str) -> None:
+        """The page's figures are the shown run's (not an earlier one's)."""
+        self.previous.discard(page)
+        for name in PAGE_IMAGES.get(page, ()):
+            self.images[name].remove_class("rnnkit-previous")
+
+    def mark_previous(self, why: str, pages=None) -> None:
+        """Mark the figures of `pages` (default: every run page) as an earlier run's, saying `why`."""
+        for page in pages or ("Training", "Forecast", "Gradients", "States", "Surface", "Scores"):
+            shown = [n for n in PAGE_IMAGES[page] if self.images[n].value]
+            if not shown:
+                self._note(page, why)
+                continue
+            self.previous.add(page)
+            for name in shown:
+                self.images[name].add_class("rnnkit-previous")
+            made = f" (made by: {self.caption})" if self.caption else ""
+            self._note(page, f"Previous run's figures{made}. {why}")
+
+    def computing(self, pages, what: str, made: str) -> None:
+        """Say on `pages` that their figures are being computed for the run `made` describes
+        (figures of an earlier run stay, marked as previous)."""
+        self.mark_previous(f"Computing {what} for {made}...", pages)
+
+    # --- a trained network, fastest figures first ---
+    def show_fast(self, result, caption: str) -> None:
+        """The training curve, the scores and the forecast of one FitResult (no diagnostics)."""
+        self.result, self.caption = result, caption
         cfg = result.config
-        self._note("Training", "Loss per epoch in scaled units; the star marks the epoch whose "
-                               "weights are kept; dotted: the gradient norm before clipping.")
+        classify = cfg.task == "classification"
+        self._current("Training")
+        status = str(result.status)
+        loss = "Cross-entropy per epoch" if classify else "Loss per epoch in scaled units"
+        self._note("Training", f"{loss}; the star marks the epoch whose "
+                               "weights are kept; dotted: the gradient norm before clipping."
+                   + (f" {status[0].upper() + status[1:]}." if status != "ok" else ""))
         self._draw("Training", "training",
                    lambda: sized("training", plots.training_curves, result.history,
-                                 status=str(result.status)))
+                                 status=status, caption=caption))
+
+        metrics = result.metrics
+        what = windows_word(result)
+        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
+        column = score_column(metrics, cfg.task)
+        self._current("Scores")
+        if classify:
+            self._note("Scores", f"Every model scored on the same held-out {what}: accuracy "
+                                 "and balanced accuracy (higher is better), log loss (lower is "
+                                 "better).")
+        else:
+            self._note("Scores", "Every model scored on the same targets, in the target's own "
+                                 "units (MASE: against the in-sample naive forecast).")
+        self._draw("Scores", "scores", lambda: sized("scores", plots.metrics_bar, metrics,
+                                                     column=column, highlight="rnn",
+                                                     caption=caption))
 
         pred = forecast_frame(result)
-        if cfg.task == "classification":
-            self._note("Forecast", "Held-out range: class probabilities, with the actual and the "
+        self._current("Forecast")
+        if classify:
+            per = "one step per held-out sequence" if result.prepared.full else "held-out range"
+            self._note("Forecast", f"Class probabilities, {per}, with the actual and the "
                                    "predicted class in the strips above.")
-            self._draw("Forecast", "forecast", lambda: sized("forecast", plots.class_forecast, pred))
+            def make_classes():
+                fig = sized("forecast", plots.class_forecast, pred, caption=caption)
+                if result.prepared.full:  # one target per sequence, named by its id
+                    fig.axes[0].set_xlabel(f"sequence ({pred.index.name or 'id'})")
+                return fig
+
+            self._draw("Forecast", "forecast", make_classes)
         else:
             base_name, base = baseline_series(result, pred.index)
             self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
@@ -190,74 +291,82 @@ class FigureViews:
             target = ", ".join(result.prepared.target_names)
 
             def make():
-                fig = sized("forecast", plots.forecast, pred, baseline=base, baseline_name=base_name)
+                fig = sized("forecast", plots.forecast, pred, baseline=base,
+                            baseline_name=base_name, caption=caption)
                 fig.axes[0].set_ylabel(target)  # a single target's columns carry no name
                 return fig
 
             self._draw("Forecast", "forecast", make)
 
-        metrics = result.metrics
-        self.metrics_table.value = _table_html(metrics, "scores: the network against baselines")
-        column = score_column(metrics, cfg.task)
-        self._note("Scores", "Every model scored on the same targets, in the target's own units "
-                             "(MASE: against the in-sample naive forecast).")
-        self._draw("Scores", "scores", lambda: sized("scores", plots.metrics_bar, metrics,
-                                                           column=column, highlight="rnn"))
-
+    def show_inside(self, result, caption: str) -> None:
+        """The gradient and state pages (measures the diagnostics on first use)."""
+        cfg = result.config
         d = result.diagnostics
+        what = windows_word(result)
         sigma = float(d.singular_values[0])
-        factor = sigma * gradient_factor(cfg.activation)
-        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. Dashed: the "
-                                f"bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
-                                + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+        self._current("Gradients")
+        if cfg.task == "classification":  # the bound line is left to the regression pages
+            self._note("Gradients", f"Measured on {plural(d.gradient_windows, d.split + ' ' + what[:-1], d.split + ' ' + what)}; "
+                                    f"right: the singular values of V (largest {sigma:.3g}).")
+            bound = None
+        else:
+            factor = sigma * gradient_factor(cfg.activation)
+            self._note("Gradients", f"Measured on {plural(d.gradient_windows, d.split + ' window', d.split + ' windows')}. "
+                                    f"Dashed: the bound ||dL/dh_T|| x sigma^(T-k), sigma = "
+                                    f"sigma_max(V) = {sigma:.3g}"
+                                    + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+            bound = factor if factor > 0 else None
         self._draw("Gradients", "gradient", lambda: sized(
-            "gradient", plots.gradient_flow, gradient_norms(d),
-            sigma_max=factor if factor > 0 else None))
+            "gradient", plots.gradient_flow, gradient_norms(d), sigma_max=bound, caption=caption))
         self._draw("Gradients", "spectrum", lambda: sized("spectrum", plots.spectrum,
-                                                            d.singular_values))
+                                                          d.singular_values, caption=caption))
         self.diagnostics_table.value = _table_html(d.summary().to_frame(), "inside the network")
 
         n = int(d.val_states.shape[0])
-        self._note("States", f"Left: one {d.split} window, units x steps (the slider picks "
-                                   f"one of {n}). Right: the last state of every {d.split} window "
-                                   "on its first two principal components.")
+        one = what[:-1]
+        self._current("States")
+        self._note("States", f"Left: one {d.split} {one}, hidden units x steps (the slider picks "
+                             f"one of {n}). Right: the last state of every {d.split} {one} "
+                             "on its first two principal components.")
         self._quiet = True
+        self.window_slider.description = f"{one} #"
         self.window_slider.value = 0
         self.window_slider.max = max(n - 1, 0)
         self._quiet = False
         self._draw_window(0)
         self._draw("States", "path", lambda: sized("path", plots.hidden_path, d.val_states,
-                                                    times=d.val_times))
-        self.set_image("surface", b"")
-        self.set_image("slice", b"")
-        self._note("Surface", "Drawing...")
+                                                   times=d.val_times, caption=caption))
 
-    def show_surfaces(self, result) -> None:
+    def show_surfaces(self, result, caption: str) -> None:
         """Draw the loss-surface page (the slowest: many loss evaluations)."""
         (a, b, surface), (s, values) = loss_planes(result)
+        self._current("Surface")
         self._note("Surface", "Left: validation loss on a random plane through the trained "
-                                   "weights, filter-normalised (Li et al. 2018). Right: along a "
-                                   "random direction in V only.")
-        self._draw("Surface", "surface", lambda: sized("surface", plots.loss_surface, a, b, surface))
+                              "weights, filter-normalised (Li et al. 2018); the colours span "
+                              f"the lowest {SURFACE_CLIP:.0%} of the values on a log scale, "
+                              "higher ones share the top colour. Right: along a random "
+                              "direction in V only.")
+        self._draw("Surface", "surface", lambda: sized("surface", plots.loss_surface, a, b,
+                                                       surface, clip=SURFACE_CLIP, caption=caption))
         self._draw("Surface", "slice", lambda: sized("slice", plots.loss_slice, s, values,
-                                                                label="V"))
+                                                     label="V", caption=caption))
 
     def _note(self, page: str, text: str) -> None:
         self.notes[page].value = (f"<div style='color:#555;margin:2px 0 6px'>{html.escape(text)}</div>"
                                   if text else "")
 
     def _draw_window(self, i: int) -> None:
-        r = self.result
+        r, caption = self.result, self.caption
 
         def make():
             states = r.diagnostics.window_states(int(i))  # (T, H)
             return sized("heatmap", plots.hidden_heatmap, states,
-                         times=window_times(r, int(i), len(states)))
+                         times=window_times(r, int(i), len(states)), caption=caption)
 
         self._draw("States", "heatmap", make)
 
     def _on_window(self, change) -> None:
-        if self._quiet or self.result is None:
+        if self._quiet or self.result is None or "States" in self.previous:
             return
         self._draw_window(change["new"])
 
@@ -282,8 +391,9 @@ class FigureViews:
         self.sweep_table.value = _table_html(
             summary[keep], f"settings ranked by {m}: mean over seeds, its standard deviation "
                            "and seed_spread (max - min over seeds)")
-        self._note("Sweep", f"{len(result.table)} runs; {result.missing} not run." if result.missing
-                   else f"{len(result.table)} runs.")
+        runs = plural(len(result.table), "run")
+        self._note("Sweep", f"{runs}; {result.missing} not run." if result.missing
+                   else f"{runs}. Move the sliders on the left to show any run on the other pages.")
         self.select("Sweep")
 
     def _draw_sweep(self) -> None:
@@ -292,8 +402,9 @@ class FigureViews:
         if x == y:
             self._note("Sweep", "Pick two different settings for the two axes.")
             return
+        made = f"sweep of {plural(len(r.table), 'run')}, ranked by {r.metric}"
         self._draw("Sweep", "sweep", lambda: sized("sweep", plots.sweep_surface, r.table, x, y,
-                                                          metric=r.metric))
+                                                   metric=r.metric, caption=made))
 
     def _on_axes(self, change) -> None:
         if not self._quiet and self.sweep_result is not None:

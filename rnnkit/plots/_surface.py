@@ -5,6 +5,8 @@ computed in ``_diagnose.py``; these functions only draw them.
 """
 from __future__ import annotations
 
+from typing import Optional
+
 import numpy as np
 from matplotlib.colors import LogNorm
 from matplotlib.figure import Figure
@@ -33,18 +35,23 @@ def _wide_positive(seen: np.ndarray, ratio: float) -> bool:
     return bool((seen > 0).all() and seen.max() / seen.min() > ratio)
 
 
-def loss_surface(alphas, betas, values, *, ax=None) -> Figure:
+def loss_surface(alphas, betas, values, *, clip: Optional[float] = None, ax=None) -> Figure:
     """Filled contours of the loss on a plane through the trained weights.
 
     The plane is theta + alpha * d1 + beta * d2; the trained point (0, 0) is
     marked with a star. Values that are NaN or inf (the loss blew up) are
     left blank. When the finite values are positive and span more than a
-    factor of 20, the levels are spaced evenly in log scale.
+    factor of 20, the levels are spaced evenly in log scale. With `clip`, the
+    colour scale ends at that quantile of the finite values (higher ones share
+    the top colour), so the basin around the trained weights gets the colours
+    instead of the walls; the log scale is then used whenever the values are
+    positive. The marker's legend sits outside the plot, under it.
 
     Args:
         alphas: (A,) increasing steps along the first direction.
         betas: (B,) increasing steps along the second direction.
         values: (B, A) loss at (alphas[j], betas[i]) in row i, column j.
+        clip: None, or a quantile in (0, 1] of the finite values where the colour scale ends.
         ax: draw into this Axes instead of a new Figure.
 
     Returns:
@@ -59,9 +66,17 @@ def loss_surface(alphas, betas, values, *, ax=None) -> Figure:
         raise ValueError(f"`values` has shape {v.shape}; expected (len(betas), len(alphas)) = "
                          f"({len(b)}, {len(a)}){hint}")
     seen = _finite_part(v, "values")
-    lo, hi = float(seen.min()), float(seen.max())
+    if clip is not None and not (isinstance(clip, (int, float)) and 0.0 < clip <= 1.0):
+        raise ValueError(f"`clip` (={clip!r}) must be a quantile in (0, 1], e.g. 0.8, or None")
+    lo, top = float(seen.min()), float(seen.max())
+    hi = top if clip is None else float(np.quantile(seen, clip))
+    if hi <= lo:
+        hi = top
     norm = None
-    if _wide_positive(seen, 20.0):
+    if clip is not None and (seen > 0).all() and hi > lo:
+        levels = np.geomspace(lo, hi, 16)
+        norm = LogNorm(vmin=lo, vmax=hi)
+    elif _wide_positive(seen, 20.0):
         levels = np.geomspace(lo, hi, 16)
         norm = LogNorm(vmin=lo, vmax=hi)
     elif hi > lo:
@@ -71,7 +86,9 @@ def loss_surface(alphas, betas, values, *, ax=None) -> Figure:
     masked = np.ma.masked_invalid(v)  # (B, A)
 
     fig, ax = base.figure_and_axes(ax, (5.6, 4.6))
-    filled = ax.contourf(a, b, masked, levels=levels, cmap=base.SEQUENTIAL + "_r", norm=norm)
+    extend = "max" if hi < top else "neither"  # values past the clip take the top colour
+    filled = ax.contourf(a, b, masked, levels=levels, cmap=base.SEQUENTIAL + "_r", norm=norm,
+                         extend=extend)
     if len(levels) > 2:
         ax.contour(a, b, masked, levels=levels, colors="white", linewidths=0.5, alpha=0.7)
     bar = fig.colorbar(filled, ax=ax, label="loss", fraction=0.05, pad=0.02)
@@ -80,10 +97,10 @@ def loss_surface(alphas, betas, values, *, ax=None) -> Figure:
         bar.ax.minorticks_off()
     ax.plot([0.0], [0.0], linestyle="none", marker="*", markersize=15, color=base.ACCENT,
             markeredgecolor="white", label="trained weights")
-    ax.legend(frameon=False, fontsize="small", loc="upper right")
+    ax.legend(frameon=False, fontsize="small", loc="upper left", bbox_to_anchor=(0.0, -0.16))
     ax.set_xlabel("alpha (direction 1)")
     ax.set_ylabel("beta (direction 2)")
-    ax.set_title(f"loss surface (min {lo:.3g}, max {hi:.3g})", loc="left")
+    ax.set_title(f"loss surface (min {lo:.3g}, max {top:.3g})", loc="left")
     return fig
 
 

@@ -232,8 +232,12 @@ def class_forecast(pred: pd.DataFrame, *, ax=None) -> Figure:
     dated = base.is_datetime(x)
     xnum = mdates.date2num(x) if dated else x
     fig, ax = base.figure_and_axes(ax)
-    ax.stackplot(xnum, probs.T, colors=colours, labels=classes, alpha=0.85, linewidth=0)
-    edges = _strip_edges(xnum)
+    # Steps, not ramps: each probability fills its own target's cell (a time or a sequence),
+    # the same cells as the strips above.
+    edges = _strip_edges(xnum)  # (N + 1,)
+    cells = np.vstack([probs, probs[-1:]])  # (N + 1, K): the last value closes the last cell
+    ax.stackplot(edges, cells.T, colors=colours, labels=classes, alpha=0.85, linewidth=0,
+                 step="post")
     code_of = {c: k for k, c in enumerate(classes)}
     cmap = ListedColormap(colours)
     strips = {"actual": (1.04, 1.12), "predicted": (1.14, 1.22)}

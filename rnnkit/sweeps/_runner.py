@@ -12,6 +12,9 @@ from __future__ import annotations
 import concurrent.futures as cf
 import contextlib
 import datetime as _dt
+import io
+import json
+import math
 import multiprocessing
 import os
 import re
@@ -23,6 +26,7 @@ import time
 from typing import Callable, Dict, List, Optional, Sequence
 
 import jax
+import numpy as np
 import pandas as pd
 
 from ..data._config import Config
@@ -215,6 +219,36 @@ def flat_metrics(metrics: pd.DataFrame) -> Dict[str, float]:
     return out
 
 
+def pack_params(params: dict) -> bytes:
+    """A run's weights as compressed .npz bytes (plain arrays, no pickle)."""
+    buf = io.BytesIO()
+    np.savez_compressed(buf, **{k: np.asarray(v) for k, v in params.items()})
+    return buf.getvalue()
+
+
+def unpack_params(blob: bytes) -> dict:
+    """The weights dict from ``pack_params`` bytes (read with allow_pickle=False)."""
+    with np.load(io.BytesIO(blob), allow_pickle=False) as z:
+        return {k: z[k] for k in z.files}
+
+
+def pack_history(history: pd.DataFrame) -> str:
+    """A history frame as JSON text: column -> list of values (NaN as null)."""
+    cols = {str(c): [None if (isinstance(v, float) and not math.isfinite(v)) else v
+                     for v in history[c].tolist()] for c in history.columns}
+    return json.dumps(cols, allow_nan=False)
+
+
+def unpack_history(text: str) -> pd.DataFrame:
+    """The history frame from ``pack_history`` text (null back to NaN)."""
+    cols = json.loads(text)
+    frame = pd.DataFrame(cols)
+    for c in frame.columns:
+        if c != "epoch":
+            frame[c] = frame[c].astype(np.float64)
+    return frame
+
+
 def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
             x64: Optional[bool] = None) -> dict:
     """Fit one Config and return its outcome; any exception becomes a "failed" outcome.
@@ -226,7 +260,9 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
         x64: jax's x64 mode to compute in (the parent's), so that a worker's
             numbers equal the parent's; None leaves it alone.
     Returns:
-        dict status, epochs, seconds, compiles, metrics ({name: float}), message.
+        dict status, epochs, seconds, compiles, metrics ({name: float}), message,
+        and for a trained run the kept weights: params (npz bytes), history (JSON
+        text), best_epoch.
     """
     if x64 is not None and bool(jax.config.jax_enable_x64) != x64:
         jax.config.update("jax_enable_x64", x64)
@@ -237,7 +273,9 @@ def run_one(df: pd.DataFrame, config: Config, shapes: Optional[dict],
         return failed_outcome(e, time.perf_counter() - t0)
     return {"status": res.status, "epochs": int(len(res.history)),
             "seconds": time.perf_counter() - t0, "compiles": int(res.compiles),
-            "metrics": flat_metrics(res.metrics), "message": ""}
+            "metrics": flat_metrics(res.metrics), "message": "",
+            "params": pack_params(res.params), "history": pack_history(res.history),
+            "best_epoch": int(res.best_epoch)}
 
 
 def failure_message(e: BaseException) -> str:
@@ -381,7 +419,8 @@ def run(df: pd.DataFrame, configs: Sequence[Config], *, store=None, workers: int
             is backtested, one stored run per fold (record "fold": {"fold": k, ...}).
     Returns:
         the stored records of `configs`, in plan order, folds in order (runs never started
-        are absent).
+        are absent); a trained run's record also holds its kept weights (params, history,
+        best_epoch).
     """
     store, owned = open_store(store)
     try:
@@ -453,6 +492,9 @@ def _run(df, configs, store, workers, executor, progress, stop, on_run, folds=No
         store.release()
         bar.close()
     got = store.get(keys)
+    kept = store.kept(got)
+    for k, w in kept.items():
+        got[k].update(w)
     return [got[k] for k in dict.fromkeys(keys) if k in got]
 
 

@@ -59,7 +59,17 @@ CREATE TABLE IF NOT EXISTS claims (
     pid INTEGER NOT NULL,  -- its process id
     at REAL NOT NULL       -- when it claimed the run (seconds since the epoch)
 )"""
-_OURS = {"runs", "layout", "claims"}
+_OURS = {"runs", "layout", "claims", "weights"}
+# The weights a run ended with, so that a finished sweep can show any run without training
+# it again. A table of its own: stores written before it existed gain it on opening.
+_WEIGHTS = """
+CREATE TABLE IF NOT EXISTS weights (
+    key TEXT PRIMARY KEY,       -- the run's key in runs
+    params BLOB NOT NULL,       -- compressed .npz of U, V, b, W, c (read with allow_pickle=False)
+    history TEXT NOT NULL,      -- JSON object: history column -> list of values (null for NaN)
+    best_epoch INTEGER NOT NULL -- the epoch whose weights these are (0: the initial ones)
+)"""
+KEPT = ("params", "history", "best_epoch")  # a record's optional fields that go to `weights`
 FIELDS = ("key", "config", "fingerprint", "status", "epochs", "seconds", "compiles",
           "metrics", "message", "finished", "fold")
 
@@ -133,6 +143,7 @@ class RunStore:
                     self._db.execute(f"PRAGMA application_id={APPLICATION_ID}")
                     self._db.execute(_TABLE)
                     self._db.execute(_CLAIMS)
+                    self._db.execute(_WEIGHTS)
                     self._db.execute("CREATE TABLE IF NOT EXISTS layout (version INTEGER NOT NULL)")
                     row = self._db.execute("SELECT version FROM layout").fetchone()
                     if row is None:
@@ -202,9 +213,15 @@ class RunStore:
                str(record.get("message") or ""),
                record.get("finished") or _now(),
                "" if record.get("fold") is None else json.dumps(record["fold"], sort_keys=True))
-        with self._lock, self._db:  # the with-block commits before returning
+        kept = None
+        if record.get("params") is not None:
+            kept = (record["key"], sqlite3.Binary(bytes(record["params"])),
+                    str(record.get("history") or "{}"), int(record.get("best_epoch") or 0))
+        with self._lock, self._db:  # the with-block commits every row before returning
             self._db.execute(f"INSERT OR REPLACE INTO runs ({', '.join(FIELDS)}) "
                              f"VALUES ({', '.join('?' * len(FIELDS))})", row)
+            if kept is not None:
+                self._db.execute("INSERT OR REPLACE INTO weights VALUES (?, ?, ?, ?)", kept)
             self._db.execute("DELETE FROM claims WHERE key = ?", (record["key"],))
 
     # --- sharing the work between processes ---
@@ -264,6 +281,19 @@ class RunStore:
                 q = f"SELECT {', '.join(FIELDS)} FROM runs WHERE key IN ({', '.join('?' * len(part))})"
                 for row in self._db.execute(q, part):
                     out[row[0]] = self._record(row)
+        return out
+
+    def kept(self, keys: Iterable[str]) -> Dict[str, dict]:
+        """The kept weights of the given keys: {key: {"params": npz bytes, "history": JSON
+        text, "best_epoch": int}} (runs stored without weights are left out)."""
+        keys = list(keys)
+        out = {}
+        with self._lock:
+            for at in range(0, len(keys), 500):
+                part = keys[at:at + 500]
+                q = f"SELECT key, params, history, best_epoch FROM weights WHERE key IN ({', '.join('?' * len(part))})"
+                for k, params, history, best in self._db.execute(q, part):
+                    out[k] = {"params": bytes(params), "history": history, "best_epoch": int(best)}
         return out
 
     def records(self) -> List[dict]:

@@ -13,6 +13,7 @@ Example:
 from __future__ import annotations
 
 import concurrent.futures as cf
+import dataclasses
 import re
 from typing import Callable, Optional, Sequence, Union
 
@@ -23,7 +24,7 @@ from ..data._config import Config
 from ..data._errors import DataError
 from ._export import document, write_document
 from ._plan import plan
-from ._runner import MAX_WORKERS, fold_spec, run
+from ._runner import MAX_WORKERS, TRAINING_FIELDS, _data_key, fold_spec, run, unpack_history, unpack_params
 
 METRICS = {"regression": ("mae", "rmse", "mase", "r2"),
            "classification": ("accuracy", "balanced_accuracy", "log_loss")}
@@ -84,6 +85,12 @@ class SweepResult:
         self.missing = planned - len(records)
         self._df = df
         self._configs = {r["key"]: Config.from_dict(r["config"]) for r in records}
+        # The weights each trained run ended with (npz bytes, history, best epoch): result(run).
+        self._kept = {r["key"]: (r["params"], r.get("history") or "{}", int(r.get("best_epoch") or 0))
+                      for r in records if r.get("params") is not None}
+        self._status = {r["key"]: (r["status"], int(r["compiles"]), float(r["seconds"]))
+                        for r in records}
+        self._prepared = {}  # data setting -> Prepared, shared by the runs that use it
         rows, metric_cols = [], {}
         for r in records:
             c = self._configs[r["key"]]
@@ -181,6 +188,67 @@ class SweepResult:
     def best(self) -> Config:
         """The winning Config (see ``best_run``), seed included, ready for ``fit``."""
         return self._configs[self.best_run()["key"]]
+
+    def key(self, run=None) -> str:
+        """The key of a run: None for the winner (``best_run``), a table row position (int)
+        or a key (str)."""
+        if run is None:
+            return str(self.best_run()["key"])
+        if isinstance(run, (int, np.integer)) and not isinstance(run, bool):
+            if not -len(self.table) <= run < len(self.table):
+                raise IndexError(f"`run` (={run}) is not a row of the table ({len(self.table)} runs); "
+                                 f"use 0..{len(self.table) - 1}")
+            return str(self.table["key"].iloc[int(run)])
+        if isinstance(run, str) and run in self._configs:
+            return run
+        raise ValueError(f"`run` (={run!r}) is not a run of this sweep; give a row position of "
+                         "`table`, a value of its `key` column, or None for the winner")
+
+    def result(self, run=None):
+        """The FitResult of one run, rebuilt from the weights the sweep kept (no training).
+
+        Args:
+            run: None (the winner), a row position of ``table``, or a run's key.
+        Returns:
+            FitResult with the run's weights, history, status and config, on the
+            sweep's frame: predict(), metrics (scored again, equal to the table's),
+            diagnostics and loss surfaces work as after ``fit``.
+        Raises:
+            ValueError when the run kept no weights (it failed) or the sweep has no frame.
+        """
+        from ..data._predict import frame_actuals, spec_of, zoned_labels
+        from ..data._prepare import prepare
+        from ..fitting._fit import SCORED, FitResult, network_predictions, score
+
+        key = self.key(run)
+        if key not in self._kept:
+            status = self._status[key][0]
+            raise ValueError(f"run {key[:12]}... kept no weights (status {status!r}): it failed "
+                             "before training; see the table's message column")
+        if self._df is None:
+            raise ValueError("this SweepResult has no frame to rebuild a run on; "
+                             "rebuild it with sweep(df, ...) on the same store")
+        df, config = self._df, self._configs[key]
+        data = _data_key(config)
+        if data not in self._prepared:
+            self._prepared[data] = prepare(df, config)
+        shared = self._prepared[data]
+        # One preparation serves every run of a data setting; the run's own training fields
+        # (activation, hidden, seed...) go into the config it carries.
+        prepared = dataclasses.replace(shared, config=shared.config.replace(
+            **{f: getattr(config, f) for f in TRAINING_FIELDS}))
+        blob, history, best_epoch = self._kept[key]
+        params = unpack_params(blob)
+        status, compiles, seconds = self._status[key]
+        actual = frame_actuals(df, prepared)
+        outputs = {s: network_predictions(params, prepared, s)
+                   for s in SCORED if len(prepared.starts[s])}
+        metrics, matrices = score(prepared, actual, outputs)
+        return FitResult(params=params, spec=spec_of(prepared, df.index.name), status=status,
+                         history=unpack_history(history), metrics=metrics, confusion=matrices,
+                         prepared=prepared, actual=actual, best_epoch=best_epoch,
+                         compiles=compiles, seconds=seconds, outputs=outputs,
+                         labels=zoned_labels(df, prepared.rows, config.time_column))
 
     def export(self, path, *, notes: Optional[str] = None):
         """Write the winner as an experiment document (JSON, checked, atomic); returns the Path."""
