@@ -4,6 +4,7 @@ Pure functions of arrays and parameter dicts; knows nothing of DataFrames or
 Config. Imports no other part of rnnkit.
 """
 from ._names import ACTIVATIONS as ACTIVATIONS
+from ._names import CELLS as CELLS
 from ._names import INITS as INITS
 from ._names import MODES as MODES
 from ._names import TASKS as TASKS

@@ -44,7 +44,7 @@ WORKER_ENV = {
     "MKL_NUM_THREADS": "1",
 }
 # Fields that change neither the windows nor the scaled data (they only shape training).
-TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "optimizer", "lr",
+TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "cell", "optimizer", "lr",
                    "weight_decay", "epochs", "batch_size", "clip", "patience", "seed")
 _ENV_LOCK = threading.Lock()
 
