@@ -151,6 +151,11 @@ def init_elman_traceable(key, n_in: int, n_hidden: int, n_out: int, scheme: str,
     }
 
 
+def _row(v, like):
+    """A bias (K,) shaped to add to ``like`` (..., K) under rank-promotion "raise"."""
+    return v.reshape((1,) * (like.ndim - 1) + v.shape)
+
+
 def elman_step(params: dict, state: tuple, x, phi: Callable):
     """One Elman step, h_t = phi(x_t U + h_{t-1} V + b), on (H,) or (B, H) states.
 
@@ -164,7 +169,8 @@ def elman_step(params: dict, state: tuple, x, phi: Callable):
       ((h_t,), ()): the new state, and no gates.
     """
     (h,) = state
-    return (phi(x @ params["U"] + h @ params["V"] + params["b"]),), ()
+    a = x @ params["U"] + h @ params["V"]
+    return (phi(a + _row(params["b"], a)),), ()
 
 
 def gru_step(params: dict, state: tuple, x, phi: Callable):
@@ -184,11 +190,12 @@ def gru_step(params: dict, state: tuple, x, phi: Callable):
     """
     (h,) = state
     H = h.shape[-1]
-    gx = x @ params["U"] + params["b"]  # (..., 3H)
+    gx = x @ params["U"]
+    gx = gx + _row(params["b"], gx)  # (..., 3H)
     gh = h @ params["V"]  # (..., 3H)
     r = jax.nn.sigmoid(gx[..., :H] + gh[..., :H])
     z = jax.nn.sigmoid(gx[..., H:2 * H] + gh[..., H:2 * H])
-    n = phi(gx[..., 2 * H:] + r * (gh[..., 2 * H:] + params["bn"]))
+    n = phi(gx[..., 2 * H:] + r * (gh[..., 2 * H:] + _row(params["bn"], h)))
     return ((1 - z) * n + z * h,), (r, z, n)
 
 
@@ -211,7 +218,8 @@ def lstm_step(params: dict, state: tuple, x, phi: Callable):
     """
     h, c = state
     H = h.shape[-1]
-    a = x @ params["U"] + h @ params["V"] + params["b"]  # (..., 4H)
+    a = x @ params["U"] + h @ params["V"]
+    a = a + _row(params["b"], a)  # (..., 4H)
     i = jax.nn.sigmoid(a[..., :H])
     f = jax.nn.sigmoid(a[..., H:2 * H])
     g = phi(a[..., 2 * H:3 * H])
