@@ -6,7 +6,8 @@ The folder (our own small layout):
                       (status, best epoch, ...); what predict needs for a new
                       frame: input and target names, class labels, the fitted
                       scaler's statistics, window, horizon, index name
-    weights.npz       U, V, b, W, c (read back with allow_pickle=False)
+    weights.npz       the cell's parameters: U, V, b, W, c (GRU also bn), read back
+                      with allow_pickle=False
     history.csv       one row per epoch
     metrics.csv       one row per model
     confusion_<split>.csv   classification only
@@ -31,12 +32,18 @@ import pandas as pd
 
 from ..data._config import Config
 from ..data._windows import Scaler
+from ..recurrent._cells import get_cell
 
 FORMAT = "rnnkit-fit"
 VERSION = 1
-PARAM_NAMES = ("U", "V", "b", "W", "c")
+PARAM_NAMES = ("U", "V", "b", "W", "c")  # the Elman cell's; param_names(cell) for any cell
 _DIAG_ARRAYS = ("gradient_through_time", "singular_values", "eigenvalues", "saturation",
                 "window_state", "val_states", "val_times")
+
+
+def param_names(cell: str) -> tuple:
+    """The names of the weights a fit of this cell stores (``init_params``' layout)."""
+    return get_cell(cell).param_names
 
 
 def _plain(v):
@@ -91,6 +98,12 @@ def _diagnostics_arrays(d) -> dict:
     out["activation"] = np.asarray(d.activation)
     out["spectral_radius"] = np.asarray(d.spectral_radius, np.float64)
     out["gradient_windows"] = np.asarray(d.gradient_windows, np.int64)
+    out["cell"] = np.asarray(d.cell)
+    out["block_names"] = np.asarray(list(d.block_singular_values), dtype=str)
+    out["block_singular_values"] = np.asarray(list(d.block_singular_values.values()), np.float64)
+    out["gate_names"] = np.asarray(list(d.gate_names), dtype=str)
+    for k in ("gate_near_zero", "gate_near_one", "gate_mean", "forget_along_window"):
+        out[k] = np.asarray(getattr(d, k), np.float64)
     return out
 
 
@@ -114,7 +127,8 @@ def save_fit(result, path) -> None:
     try:
         with open(tmp / "config.json", "w", encoding="utf-8") as f:
             json.dump(_document(result), f, indent=2, allow_nan=False)
-        np.savez(tmp / "weights.npz", **{k: np.asarray(result.params[k]) for k in PARAM_NAMES})
+        np.savez(tmp / "weights.npz", **{k: np.asarray(result.params[k])
+                                         for k in param_names(result.config.cell)})
         result.history.to_csv(tmp / "history.csv", index=False)
         result.metrics.to_csv(tmp / "metrics.csv", index=True)
         for split, table in result.confusion.items():
@@ -155,10 +169,17 @@ def _read_diagnostics(file: Path):
         return None
     with np.load(file, allow_pickle=False) as z:
         a = {k: z[k] for k in z.files}
+    gated = {}
+    if "cell" in a:  # written since the gated cells; older folders hold an Elman fit
+        gated = dict(cell=str(a["cell"]),
+                     block_singular_values=dict(zip(a["block_names"].tolist(), a["block_singular_values"])),
+                     gate_names=tuple(a["gate_names"].tolist()), gate_near_zero=a["gate_near_zero"],
+                     gate_near_one=a["gate_near_one"], gate_mean=a["gate_mean"],
+                     forget_along_window=a["forget_along_window"])
     return Diagnostics(str(a["split"]), str(a["activation"]), a["gradient_through_time"],
                        int(a["gradient_windows"]), a["singular_values"], a["eigenvalues"],
                        float(a["spectral_radius"]), a["saturation"], a["window_state"],
-                       a["val_states"], a["val_times"])
+                       a["val_states"], a["val_times"], **gated)
 
 
 def read_fit(path) -> dict:
@@ -182,7 +203,12 @@ def read_fit(path) -> dict:
                          f"reads version {VERSION}")
     spec = _read_spec(doc)
     with np.load(path / "weights.npz", allow_pickle=False) as z:
-        params = {k: z[k] for k in PARAM_NAMES}
+        names = param_names(spec.config.cell)
+        missing = [k for k in names if k not in z.files]
+        if missing:
+            raise ValueError(f"{str(path)!r}: weights.npz lacks {missing}, which a "
+                             f"{spec.config.cell!r} fit needs; the folder is damaged, save the fit again")
+        params = {k: z[k] for k in names}
     history = pd.read_csv(path / "history.csv", float_precision="round_trip")
     metrics = pd.read_csv(path / "metrics.csv", index_col=0, float_precision="round_trip")
     confusion = {}

@@ -61,13 +61,13 @@ def random_direction(key, params: dict) -> dict:
     return filter_normalised(raw, params)
 
 
-@partial(jax.jit, static_argnames=("act", "task", "mode", "batch"))
-def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch):
+@partial(jax.jit, static_argnames=("act", "task", "mode", "batch", "cell"))
+def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch, cell="elman"):
     """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,)."""
 
     def at(ab):
         p = {k: params[k] + ab[0] * d1[k] + ab[1] * d2[k] for k in params}
-        return model_loss(p, xs, ys, activation=act, task=task, mode=mode, mask=mask)
+        return model_loss(p, xs, ys, activation=act, task=task, mode=mode, mask=mask, cell=cell)
 
     return lax.map(at, points, batch_size=batch)
 
@@ -114,7 +114,7 @@ def _evaluate(result, split, d1, d2, points):
         ys = jnp.asarray(y) if cfg.task == "classification" else jnp.asarray(y, dtype)
         values = _grid_losses(p, d1, d2, jnp.asarray(points, dtype), jnp.asarray(x, dtype), ys,
                               None if mask is None else jnp.asarray(mask), act=cfg.activation,
-                              task=cfg.task, mode=cfg.mode, batch=batch)
+                              task=cfg.task, mode=cfg.mode, batch=batch, cell=cfg.cell)
     return np.asarray(values, np.float64)
 
 

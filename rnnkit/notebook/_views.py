@@ -206,10 +206,12 @@ class FigureViews:
 
         d = result.diagnostics
         sigma = float(d.singular_values[0])
-        factor = sigma * gradient_factor(cfg.activation)
-        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. Dashed: the "
-                                f"bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
-                                + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + ".")
+        # the Pascanu et al. bound holds for the Elman cell only; a gated cell gets no dashed line
+        factor = sigma * gradient_factor(cfg.activation) if d.gradient_bound_applies else 0.0
+        self._note("Gradients", f"Measured on {d.gradient_windows} {d.split} windows. " + (
+            f"Dashed: the bound ||dL/dh_T|| x sigma^(T-k), sigma = sigma_max(V) = {sigma:.3g}"
+            + (" x 1/4 (sigmoid)" if cfg.activation == "sigmoid" else "") + "."
+            if d.gradient_bound_applies else d.gradient_bound_note[0].upper() + d.gradient_bound_note[1:] + "."))
         self._draw("Gradients", "gradient", lambda: sized(
             "gradient", plots.gradient_flow, gradient_norms(d),
             sigma_max=factor if factor > 0 else None))

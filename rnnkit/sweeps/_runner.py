@@ -119,7 +119,7 @@ def _shared_compile_cache() -> tuple:
 def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
     """What tells two runs' training programs apart (parameter shapes, padded data shapes,
     static choices); runs in one group share a program."""
-    return (config.hidden, config.optimizer, config.batch_size, config.clip is None, config.init,
+    return (config.cell, config.hidden, config.optimizer, config.batch_size, config.clip is None, config.init,
             config.dtype, tuple(sorted((shapes or {}).items())))
 
 
