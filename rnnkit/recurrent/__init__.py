@@ -13,4 +13,6 @@ from ._model import hidden_states as hidden_states
 from ._model import loss as loss
 from ._model import outputs as outputs
 from ._model import predict_classes as predict_classes
+from ._torch import from_torch as from_torch
+from ._torch import to_torch as to_torch
 from . import reference as reference
