@@ -118,6 +118,7 @@ def render(summary: dict) -> str:
     if evidence:
         lines += ["", "## Where the time goes (missed targets)", ""] + evidence
     lines += _step_section(parts.get("step", {}))
+    lines += _gated_section(parts.get("gated", {}))
     lines += _sweep_section(parts.get("sweep", {}))
     lines += _latency_section(parts.get("latency", {}))
     lines += _first_result_section(parts.get("first_result", {}))
@@ -155,6 +156,24 @@ def _step_section(part: dict) -> list:
     return out + ["", "bench_step.py's output (its own checks included):", "", "```",
                   part.get("output", "").rstrip(), "```"] + \
         (["", "Its own checks: " + "; ".join(own) + "."] if own else [])
+
+
+def _gated_section(part: dict) -> list:
+    if not part:
+        return []
+    out = ["", "## Gated cells' training step (bench_gated.py)", ""] + _failed(part)
+    if "rows" not in part:
+        return out
+    out += ["GRU and LSTM: forward + BPTT + Adam, float32, many-to-one tanh; rnnkit (custom-VJP "
+            "BPTT), autodiff of the scan and torch.nn.GRU / torch.nn.LSTM + Linear + Adam side by "
+            "side in one process over the same 8 minibatches; medians over rounds, and the ratio "
+            "of the best rounds." + (" One core for the whole process." if part.get("one_core") else ""),
+            ""]
+    rows = [(r["cell"], "x".join(map(str, r["shape"])), f"{r['fast_ms']:.2f}", f"{r['autodiff_ms']:.2f}",
+             f"{r['torch_ms']:.2f}", f"{r['torch_over_fast']:.2f}x",
+             f"{r.get('best_torch_over_best_fast', float('nan')):.2f}x") for r in part["rows"]]
+    return out + _table(rows, ("cell", "B x T x I x H", "rnnkit ms", "autodiff ms", "torch ms",
+                               "torch / rnnkit", "best / best"))
 
 
 def _sweep_section(part: dict) -> list:

@@ -9,6 +9,7 @@ settings and peak memory of one never leak into another):
 
     bench_step.py          training step vs torch.nn.RNN + Linear + Adam, and GFLOP/s
                            against numpy's float32 matmul rate (its own ratios, one run)
+    bench_gated.py         GRU and LSTM training steps vs torch.nn.GRU / LSTM + Linear + Adam
     bench_sweep.py         programs compiled, compile share, 2 workers vs 1
     bench_latency.py       cold and warm fit() of the default config on the demo data
     bench_first_result.py  import time; a fresh process's first fit with an empty and a filled
@@ -179,6 +180,7 @@ def run_suite(mode: str) -> dict:
     parts = {}
     try:
         for name, fn in (("step", lambda: step_benchmark(mode)),
+                         ("gated", lambda: _mine("bench_gated.py", mode)),
                          ("sweep", lambda: _mine("bench_sweep.py", mode)),
                          ("latency", lambda: _mine("bench_latency.py", mode)),
                          ("first_result", lambda: _mine("bench_first_result.py", mode)),

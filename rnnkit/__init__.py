@@ -20,6 +20,8 @@ from .recurrent import loss as loss
 from .recurrent import outputs as outputs
 from .recurrent import predict_classes as predict_classes
 from .recurrent import reference as reference
+from .recurrent import from_torch as from_torch
+from .recurrent import to_torch as to_torch
 from .data import Config as Config
 from .data import DataError as DataError
 from .data import Prepared as Prepared

@@ -53,6 +53,8 @@ BAD = [
     ("init", "he", {}),
     ("recurrent_scale", 0.0, {}),
     ("recurrent_scale", math.inf, {}),
+    ("cell", "transformer", {}),
+    ("cell", "GRU", {}),
     ("optimizer", "lbfgs", {}),
     ("lr", -1e-3, {}),
     ("lr", math.nan, {}),

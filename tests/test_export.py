@@ -60,7 +60,8 @@ def test_schema_choices_equal_config_choices():
     choices = {"task": _config.TASKS, "mode": _config.MODES, "scale": _config.SCALES,
                "missing": _config.MISSING, "short_sequences": _config.SHORT,
                "activation": _config.ACTIVATIONS, "init": _config.INITS,
-               "optimizer": _config.OPTIMIZERS, "dtype": _config.DTYPES, "watch": _config.WATCHES}
+               "optimizer": _config.OPTIMIZERS, "dtype": _config.DTYPES, "watch": _config.WATCHES,
+               "cell": _config.CELLS}
     enums = {k: v["enum"] for k, v in CONFIG_SCHEMA["properties"].items() if "enum" in v}
     assert enums == {k: list(v) for k, v in choices.items()}
 

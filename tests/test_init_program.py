@@ -73,3 +73,19 @@ def test_compile_options_change_numbers_only_by_rounding():
             assert np.asarray(pb[k]).dtype == np.dtype(dtype)
         np.testing.assert_allclose(float(sb.val_loss), float(sa.val_loss), **tol)
         assert int(sb.steps) == int(sa.steps) and bool(sb.finite)
+
+
+@pytest.mark.parametrize("cell,init,dtype", [("gru", "orthogonal", "float32"), ("lstm", "glorot", "float64"),
+                                             ("lstm", "identity", "float32")])
+def test_gated_initial_state_equals_init_params(cell, init, dtype):
+    # The compiled initial state of a gated cell equals init_params(cell=...) run op by op.
+    cfg = Config(target="y", hidden=5, init=init, seed=4, recurrent_scale=0.8, dtype=dtype, cell=cell)
+    with precision(dtype):
+        k_init, k_shuffle = jax.random.split(jax.random.key(4))
+        params = init_params(k_init, 3, 5, 2, scheme=init, recurrent_scale=0.8, dtype=np.dtype(dtype),
+                             cell=cell)
+        expected = (params, init_state("adam", cfg.lr, 1.0, 0.0, params), k_shuffle)
+        got = initial_state(_Sizes(), cfg)
+    assert _same(expected, got)
+    if cell == "lstm":  # forget-gate bias 1 (Jozefowicz, Zaremba & Sutskever 2015), the rest 0
+        np.testing.assert_array_equal(np.asarray(got[0]["b"]), np.repeat([0.0, 1.0, 0.0, 0.0], 5))

@@ -393,12 +393,13 @@ def test_sweep_ranges_write_the_lists_and_a_typed_list_is_taken(demo, start):
     c["sweep_lr_count"].value = 3
     assert c["sweep_lr"].value == "0.0001, 0.001, 0.01"
     space, seeds, base = read_space(c)
-    assert space["window"] == [10, 20, 30, 40] and space["lr"] == [1e-4, 1e-3, 1e-2] and base == {}
+    assert space["window"] == [10, 20, 30, 40] and space["lr"] == [1e-4, 1e-3, 1e-2]
+    assert base == {"cell": "elman"}  # the one cell picked is the base's
     # A typed list wins over the sliders; one learning rate is the base's, not a varied field.
     c["sweep_windows"].value = "6, 96"
     c["sweep_lr"].value = "0.003"
     space, seeds, base = read_space(c)
-    assert space["window"] == [6, 96] and "lr" not in space and base == {"lr": 0.003}
+    assert space["window"] == [6, 96] and "lr" not in space and base == {"lr": 0.003, "cell": "elman"}
     # With one learning rate in the grid, it follows the model's learning rate.
     c["sweep_lr_count"].value = 1
     c["lr"].value = 1e-3

@@ -11,7 +11,7 @@ import rnnkit
 DOCUMENTED = ["init_params", "hidden_states", "outputs", "loss", "predict_classes", "check_gradients",
               "Config", "load_config", "save_config", "DataError", "prepare", "Prepared", "fit",
               "FitResult", "load_fit", "sweep", "SweepResult", "panel", "plots", "datasets", "reference",
-              "loss_surface", "loss_slice", "Diagnostics"]
+              "loss_surface", "loss_slice", "Diagnostics", "to_torch", "from_torch"]
 
 
 @pytest.mark.parametrize("name", DOCUMENTED)

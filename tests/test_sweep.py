@@ -307,6 +307,21 @@ def test_pool_workers_are_bound_to_one_core_each(tmp_path):
     assert len(cores) == 2 and all(len(c) == 1 for c in cores) and cores[0] != cores[1], cores
 
 
+def test_cell_is_a_sweep_dimension_with_one_program_per_cell_and_hidden(sunspots):
+    # batch_size 22 is used by no other test, so these programs are new to this process.
+    base = BASE.replace(batch_size=22, epochs=1)
+    space = {"cell": ["elman", "gru", "lstm"], "window": [4, 8], "hidden": [3],
+             "activation": ["tanh", "relu"]}
+    res = sweep(sunspots, base, space, progress=False)
+    t = res.table
+    assert len(t) == 12 and (t["status"] == "ok").all()
+    # windows padded to one shape, activation as data, the cell static: one program per (cell, hidden)
+    per_program = t.groupby(["cell", "hidden"])["compiles"].sum()
+    assert len(per_program) == 3 and (per_program <= 1).all(), per_program
+    assert t.groupby("cell")["val_rmse"].nunique().gt(1).all()  # the cells trained differently
+    assert res.best().cell in ("elman", "gru", "lstm")
+
+
 def test_interleave_takes_one_run_per_program_in_turn():
     cfgs = [BASE.replace(hidden=h, activation=a) for h in (32, 16, 8)
             for a in ("tanh", "relu", "sigmoid")]

@@ -222,8 +222,8 @@ def gradient_check_on_data(df, config, *, n_windows: int = 4):
     k = min(n_windows, len(x))
     key = jax.random.PRNGKey(config.seed)
     params = init_params(key, prep.n_inputs, config.hidden, prep.n_outputs, scheme=config.init,
-                         recurrent_scale=config.recurrent_scale)
-    kw = dict(activation=config.activation, task=config.task, mode=config.mode)
+                         recurrent_scale=config.recurrent_scale, cell=config.cell)
+    kw = dict(activation=config.activation, task=config.task, mode=config.mode, cell=config.cell)
     if mask is not None:
         kw["mask"] = mask[:k]
     return check_gradients(params, x[:k], y[:k], **kw)

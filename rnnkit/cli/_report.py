@@ -31,8 +31,10 @@ _CAPTIONS = {
     "forecast_recent": "The last steps of the test range, up close.",
     "gradient_flow": "Mean norm of dL/dh_k over the window: steep decay means the network "
                      "cannot learn from early steps (vanishing gradients).",
-    "spectrum": "Singular values of the recurrent matrix V; values above 1 can make "
-                "gradients explode.",
+    "spectrum": "Singular values of the recurrent matrix V (gated cells: its candidate "
+                "block); values above 1 can make gradients explode.",
+    "gate_activity": "Gated cells: the share of each gate's values near 0 (shut) and near 1 "
+                     "(open); for LSTM, the mean forget gate at every step of the window.",
     "hidden_states": "Hidden units over the steps of one validation window.",
     "hidden_path": "The hidden state over the validation range, projected on its first "
                    "two principal components.",

@@ -15,7 +15,7 @@ from typing import Any, Optional, Tuple, Union
 
 import numpy as np
 
-from ..recurrent._names import ACTIVATIONS, INITS, MODES, TASKS
+from ..recurrent._names import ACTIVATIONS, CELLS, INITS, MODES, TASKS
 
 SCALES = ("standard", "minmax", "none")
 MISSING = ("error", "ffill", "interpolate")
@@ -62,6 +62,7 @@ class Config:
     activation: str = "tanh"  # state nonlinearity: tanh, sigmoid, relu, linear
     init: str = "orthogonal"  # "glorot", "orthogonal" (Saxe et al. 2014), "identity" (Le et al. 2015)
     recurrent_scale: float = 1.0  # multiplies the initial recurrent matrix V
+    cell: str = "elman"  # "elman", "gru" (as torch.nn.GRU) or "lstm" (forget gate, as torch.nn.LSTM)
     # --- training ---
     optimizer: str = "adam"  # sgd, momentum, rmsprop, adam, adamw (all from optax)
     lr: float = 5e-3  # learning rate
@@ -139,7 +140,7 @@ def _check(c: Config) -> None:
     for name, choices in (("task", TASKS), ("mode", MODES), ("scale", SCALES),
                           ("missing", MISSING), ("short_sequences", SHORT), ("activation", ACTIVATIONS),
                           ("init", INITS), ("optimizer", OPTIMIZERS), ("dtype", DTYPES),
-                          ("watch", WATCHES)):
+                          ("watch", WATCHES), ("cell", CELLS)):
         v = getattr(c, name)
         if v not in choices:
             raise _bad(name, v, "one of " + ", ".join(repr(x) for x in choices))

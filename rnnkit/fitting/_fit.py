@@ -188,7 +188,8 @@ class FitResult:
         task = self.config.task
         col = "val_rmse" if task == "regression" else "val_accuracy"
         rnn = self.metrics[col].get("rnn", float("nan")) if col in self.metrics else float("nan")
-        return (f"FitResult({task}, hidden={self.config.hidden}, activation={self.config.activation!r}, "
+        return (f"FitResult({task}, cell={self.config.cell!r}, hidden={self.config.hidden}, "
+                f"activation={self.config.activation!r}, "
                 f"status={self.status!r}, epochs={len(self.history)}, kept epoch {self.best_epoch} "
                 f"by {self.watched}, {col}={rnn:.4g})")
 
@@ -261,10 +262,15 @@ class FitResult:
             figs["forecast"] = plots.forecast(pred) if regression else plots.class_forecast(pred)
         d = self.diagnostics
         bound = 0.25 if d.activation == "sigmoid" else 1.0  # max |phi'|
-        sigma = float(d.singular_values[0]) * bound
+        # the Pascanu et al. bound holds for the Elman recurrence only
+        sigma = float(d.singular_values[0]) * bound if d.gradient_bound_applies else 0.0
         grads = np.nan_to_num(d.gradient_through_time, nan=0.0)
         figs["gradient_flow"] = plots.gradient_flow(grads, sigma_max=sigma if sigma > 0 else None)
         figs["spectrum"] = plots.spectrum(d.singular_values)
+        if d.gate_names:  # gated cells: how often each gate is shut or open
+            figs["gate_activity"] = plots.gate_activity(
+                d.gate_names, d.gate_near_zero, d.gate_near_one,
+                forget_along=d.forget_along_window if len(d.forget_along_window) else None)
         figs["hidden_states"] = plots.hidden_heatmap(d.window_state)
         if len(d.val_states) >= 2:
             figs["hidden_path"] = plots.hidden_path(d.val_states)
@@ -273,7 +279,8 @@ class FitResult:
 
 def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_epoch=None,
         shapes: Optional[dict] = None) -> FitResult:
-    """Train an Elman network on a frame and score it against baselines.
+    """Train a recurrent network (``config.cell``: Elman, GRU or LSTM) on a frame and score it
+    against baselines.
 
     Args:
       df: the frame (one series, or sequences with ``group_column``); never modified.

@@ -6,7 +6,8 @@ The folder (our own small layout):
                       (status, best epoch, ...); what predict needs for a new
                       frame: input and target names, class labels, the fitted
                       scaler's statistics, window, horizon, index name
-    weights.npz       U, V, b, W, c (read back with allow_pickle=False)
+    weights.npz       the cell's parameters: U, V, b, W, c (GRU also bn), read back
+                      with allow_pickle=False
     history.csv       one row per epoch
     metrics.csv       one row per model
     confusion_<split>.csv   classification only
@@ -41,13 +42,19 @@ import pandas as pd
 
 from ..data._config import Config
 from ..data._windows import Scaler
+from ..recurrent._cells import get_cell
 
 FORMAT = "rnnkit-fit"
 VERSION = 1
-PARAM_NAMES = ("U", "V", "b", "W", "c")
+PARAM_NAMES = ("U", "V", "b", "W", "c")  # the Elman cell's; param_names(cell) for any cell
 MANIFEST = "manifest.json"
 _DIAG_ARRAYS = ("gradient_through_time", "singular_values", "eigenvalues", "saturation",
                 "window_state", "val_states", "val_times")
+
+
+def param_names(cell: str) -> tuple:
+    """The names of the weights a fit of this cell stores (``init_params``' layout)."""
+    return get_cell(cell).param_names
 
 
 def _plain(v):
@@ -103,6 +110,12 @@ def _diagnostics_arrays(d) -> dict:
     out["activation"] = np.asarray(d.activation)
     out["spectral_radius"] = np.asarray(d.spectral_radius, np.float64)
     out["gradient_windows"] = np.asarray(d.gradient_windows, np.int64)
+    out["cell"] = np.asarray(d.cell)
+    out["block_names"] = np.asarray(list(d.block_singular_values), dtype=str)
+    out["block_singular_values"] = np.asarray(list(d.block_singular_values.values()), np.float64)
+    out["gate_names"] = np.asarray(list(d.gate_names), dtype=str)
+    for k in ("gate_near_zero", "gate_near_one", "gate_mean", "forget_along_window"):
+        out[k] = np.asarray(getattr(d, k), np.float64)
     return out
 
 
@@ -200,7 +213,8 @@ def save_fit(result, path) -> None:
     try:
         with open(tmp / "config.json", "w", encoding="utf-8") as f:
             json.dump(_document(result), f, indent=2, allow_nan=False)
-        np.savez(tmp / "weights.npz", **{k: np.asarray(result.params[k]) for k in PARAM_NAMES})
+        np.savez(tmp / "weights.npz", **{k: np.asarray(result.params[k])
+                                         for k in param_names(result.config.cell)})
         result.history.to_csv(tmp / "history.csv", index=False)
         result.metrics.to_csv(tmp / "metrics.csv", index=True)
         for split, table in result.confusion.items():
@@ -246,10 +260,17 @@ def _read_diagnostics(file: Path):
         return None
     with open(file, "rb") as fh, np.load(fh, allow_pickle=False) as z:
         a = {k: z[k] for k in z.files}
+    gated = {}
+    if "cell" in a:  # written since the gated cells; older folders hold an Elman fit
+        gated = dict(cell=str(a["cell"]),
+                     block_singular_values=dict(zip(a["block_names"].tolist(), a["block_singular_values"])),
+                     gate_names=tuple(a["gate_names"].tolist()), gate_near_zero=a["gate_near_zero"],
+                     gate_near_one=a["gate_near_one"], gate_mean=a["gate_mean"],
+                     forget_along_window=a["forget_along_window"])
     return Diagnostics(str(a["split"]), str(a["activation"]), a["gradient_through_time"],
                        int(a["gradient_windows"]), a["singular_values"], a["eigenvalues"],
                        float(a["spectral_radius"]), a["saturation"], a["window_state"],
-                       a["val_states"], a["val_times"])
+                       a["val_states"], a["val_times"], **gated)
 
 
 def _check_manifest(path: Path) -> set:
@@ -313,7 +334,7 @@ def _check_consistent(path: Path, spec, params: dict) -> None:
             or c.shape != (n_out,):
         raise ValueError(f"{wfile}: weight shapes U {U.shape}, V {V.shape}, W {W.shape}, c {c.shape} do "
                          f"not fit {n_in} inputs, hidden {h} and {n_out} outputs of {where}")
-    bad = [k for k in PARAM_NAMES if not np.isfinite(params[k]).all()]
+    bad = [k for k in params if not np.isfinite(params[k]).all()]
     if bad:
         raise ValueError(f"{wfile}: weights {bad} hold NaN/inf")
 
@@ -328,13 +349,13 @@ def _read(file: Path, reader):
                          "is damaged: save it again") from None
 
 
-def _read_weights(file: Path) -> dict:
+def _read_weights(file: Path, names) -> dict:
     # Our own file handle: np.load leaves its own open when the zip is damaged.
     with open(file, "rb") as fh, np.load(fh, allow_pickle=False) as z:
-        missing = [k for k in PARAM_NAMES if k not in z.files]
+        missing = [k for k in names if k not in z.files]
         if missing:
-            raise KeyError(f"no array {missing}")
-        return {k: z[k] for k in PARAM_NAMES}
+            raise KeyError(f"no array {missing}, which this cell's fit needs")
+        return {k: z[k] for k in names}
 
 
 def read_fit(path) -> dict:
@@ -360,7 +381,7 @@ def read_fit(path) -> dict:
         raise ValueError(f"{str(path)!r} has fit format version {doc.get('version')!r}; this rnnkit "
                          f"reads version {VERSION}")
     spec = _read(path / "config.json", lambda f: _read_spec(doc))
-    params = _read(path / "weights.npz", _read_weights)
+    params = _read(path / "weights.npz", lambda f: _read_weights(f, param_names(spec.config.cell)))
     _check_consistent(path, spec, params)
     history = _read(path / "history.csv", lambda f: pd.read_csv(f, float_precision="round_trip"))
     metrics = _read(path / "metrics.csv",

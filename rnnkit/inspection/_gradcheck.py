@@ -6,9 +6,8 @@ import numpy as np
 import pandas as pd
 
 from ..recurrent import reference
+from ..recurrent._cells import get_cell
 from ..recurrent._model import _resolve_activation, loss as _jax_loss
-
-_NAMES = ("U", "V", "b", "W", "c")
 
 
 def _diff(a, b):
@@ -31,15 +30,18 @@ def check_gradients(params, xs, ys, *, eps: float = 1e-6, **model_kw) -> pd.Data
     near 0 can make fd differ more (the kink).
 
     Finite differences cost two forward passes per parameter entry: keep H small.
+    Works for every cell (``cell="gru"`` / ``"lstm"`` in ``model_kw``): the
+    reference has a hand-written BPTT for each.
 
     Args:
-      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,).
+      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,), or a gated
+        cell's dict (``init_params``).
       xs, ys: as ``rnnkit.loss``.
       eps: finite-difference step.
-      **model_kw: activation (a name), task, mode, mask, h0.
+      **model_kw: activation (a name), task, mode, mask, h0, cell.
 
     Returns:
-      DataFrame indexed by parameter name (U, V, b, W, c) with columns shape,
+      DataFrame indexed by parameter name (U, V, b, [bn,] W, c) with columns shape,
       grad_norm, jax_vs_bptt_abs, jax_vs_bptt_rel, jax_vs_fd_abs, jax_vs_fd_rel,
       bptt_vs_fd_abs, bptt_vs_fd_rel.
 
@@ -47,13 +49,14 @@ def check_gradients(params, xs, ys, *, eps: float = 1e-6, **model_kw) -> pd.Data
       >>> check_gradients(params, xs, ys, activation="tanh", task="regression",
       ...                 mode="many-to-one").round(10)
     """
-    if not isinstance(params, dict) or any(k not in params for k in _NAMES):
-        raise ValueError(f"`params` must be a dict with keys {list(_NAMES)} "
+    names = get_cell(model_kw.get("cell", "elman")).param_names
+    if not isinstance(params, dict) or any(k not in params for k in names):
+        raise ValueError(f"`params` must be a dict with keys {list(names)} "
                          "(make them with rnnkit.init_params)")
     if "activation" in model_kw and not isinstance(model_kw["activation"], str):
         # an index (as the training loop passes it) becomes its name for the NumPy reference
         model_kw["activation"] = _resolve_activation(model_kw["activation"])
-    p64 = {k: np.asarray(params[k], dtype=np.float64) for k in _NAMES}
+    p64 = {k: np.asarray(params[k], dtype=np.float64) for k in names}
     xs64 = np.asarray(xs, dtype=np.float64)
     ys_np = np.asarray(ys)
     if np.issubdtype(ys_np.dtype, np.floating):
@@ -65,7 +68,7 @@ def check_gradients(params, xs, ys, *, eps: float = 1e-6, **model_kw) -> pd.Data
     _, g_bptt = reference.bptt(p64, xs64, ys_np, **model_kw)
     g_fd = reference.finite_difference_grads(p64, xs64, ys_np, eps=eps, **model_kw)
     rows = []
-    for k in _NAMES:
+    for k in names:
         row = {"parameter": k, "shape": tuple(p64[k].shape),
                "grad_norm": float(np.linalg.norm(g_jax[k]))}
         for name, a, b in (("jax_vs_bptt", g_jax[k], g_bptt[k]), ("jax_vs_fd", g_jax[k], g_fd[k]),

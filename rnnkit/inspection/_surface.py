@@ -30,6 +30,7 @@ import numpy as np
 from jax import lax
 
 from ..recurrent._cells import get_activation
+from ..recurrent._model import loss as model_loss
 
 # State floats (points x windows x hidden) of one block of points run together. Measured on
 # the demo (2604 windows, H = 32, 2 busy cores): blocks of 2**20 floats (12 points, 4 MiB
@@ -116,8 +117,8 @@ def _point_loss(p, xt, yt, m, w, count, *, act, task, mode):
     return total / count
 
 
-@partial(jax.jit, static_argnames=("act", "task", "mode", "batch"))
-def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch):
+@partial(jax.jit, static_argnames=("act", "task", "mode", "batch", "cell"))
+def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch, cell="elman"):
     """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,).
 
     xs (B, T, I), ys and mask (B, T) or None as ``recurrent.loss`` takes them.
@@ -137,6 +138,8 @@ def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch
 
     def at(ab):
         p = {k: params[k] + ab[0] * d1[k] + ab[1] * d2[k] for k in params}
+        if cell != "elman":  # gated cells: the model's own loss (its states are not kept either)
+            return model_loss(p, xs, ys, activation=act, task=task, mode=mode, mask=mask, cell=cell)
         return _point_loss(p, xt, yt, m, w, count, act=act, task=task, mode=mode)
 
     return lax.map(at, points, batch_size=batch)
@@ -188,7 +191,7 @@ def _evaluate(result, split, d1, d2, points):
         ys = jnp.asarray(y) if cfg.task == "classification" else jnp.asarray(y, dtype)
         values = _grid_losses(p, d1, d2, jnp.asarray(points, dtype), jnp.asarray(x, dtype), ys,
                               None if mask is None else jnp.asarray(mask), act=cfg.activation,
-                              task=cfg.task, mode=cfg.mode, batch=batch)
+                              task=cfg.task, mode=cfg.mode, batch=batch, cell=cfg.cell)
     return np.asarray(values, np.float64)[:n_points]
 
 

@@ -48,8 +48,9 @@ def plural(n: int, word: str, many: str = "") -> str:
 def caption(config, run: str = "") -> str:
     """What made a figure, in one line: the settings that shape a network, and which run."""
     window = "whole sequences" if config.window == "full" else f"window {config.window}"
-    cell = getattr(config, "cell", None)
-    parts = [window, f"{config.hidden} {config.activation} {cell + ' ' if cell else ''}units",
+    cell = getattr(config, "cell", "elman")
+    kind = "" if cell == "elman" else cell.upper() + " "  # the plain cell goes unnamed
+    parts = [window, f"{config.hidden} {config.activation} {kind}units",
              f"lr {config.lr:.2g}", f"{plural(config.epochs, 'epoch')} max", f"seed {config.seed}"]
     return " · ".join(parts) + (f"  —  {run}" if run else "")
 
@@ -305,9 +306,12 @@ class FigureViews:
         what = windows_word(result)
         sigma = float(d.singular_values[0])
         self._current("Gradients")
-        if cfg.task == "classification":  # the bound line is left to the regression pages
+        if cfg.task == "classification" or not d.gradient_bound_applies:
+            # the bound line is left to the regression pages, and holds for the Elman cell only
             self._note("Gradients", f"Measured on {plural(d.gradient_windows, d.split + ' ' + what[:-1], d.split + ' ' + what)}; "
-                                    f"right: the singular values of V (largest {sigma:.3g}).")
+                                    f"right: the singular values of V (largest {sigma:.3g})."
+                       + ("" if d.gradient_bound_applies else " " + d.gradient_bound_note[0].upper()
+                          + d.gradient_bound_note[1:] + "."))
             bound = None
         else:
             factor = sigma * gradient_factor(cfg.activation)

@@ -19,6 +19,7 @@ Training and results:
 Inside the network:
     gradient_flow(norms, sigma_max=)        ||dL/dh_k|| against step k, with its bound
     spectrum(singular_values)               singular values of V against 1
+    gate_activity(names, near_zero, near_one, forget_along=)   GRU/LSTM gates shut or open
     hidden_heatmap(states)                  units x time image
     hidden_path(states)                     principal-component path of the state
     loss_surface(alphas, betas, values)     loss on a plane through the weights
@@ -35,6 +36,7 @@ Example:
 from ._backtest import backtest_folds as backtest_folds
 from ._compare import metrics_bar as metrics_bar
 from ._compare import sweep_surface as sweep_surface
+from ._inside import gate_activity as gate_activity
 from ._inside import gradient_flow as gradient_flow
 from ._inside import hidden_heatmap as hidden_heatmap
 from ._inside import hidden_path as hidden_path

@@ -193,3 +193,59 @@ def hidden_path(states, *, times=None, ax=None) -> Figure:
     base.tidy(ax)
     ax.set_title(f"hidden-state path ({N} steps, {H} unit{'s' if H > 1 else ''})", loc="left")
     return fig
+
+
+def gate_activity(names, near_zero, near_one, *, forget_along=None, ax=None) -> Figure:
+    """How often each logistic gate of a GRU or LSTM sits shut (< 0.05) or open (> 0.95).
+
+    A gate that is nearly always shut or open acts as a constant switch; one
+    that rarely is keeps mixing. With ``forget_along`` (an LSTM's mean forget
+    gate at every step of the window) a second panel shows it: near 1 the cell
+    keeps what it holds, near 0 it forgets at each step.
+
+    Args:
+        names: the gate names (G,), e.g. ("input", "forget", "output").
+        near_zero, near_one: (G,) shares in [0, 1].
+        forget_along: optional (T,) mean forget-gate values in [0, 1].
+        ax: draw the bars into this Axes (the forget panel is then left out).
+
+    Returns:
+        The Figure drawn on.
+    """
+    names = [str(n) for n in names]
+    if not names:
+        raise ValueError("`names` is empty: an Elman cell has no gates to show")
+    shut = base.as_array(near_zero, "near_zero", 1, "(G,): one share per gate")
+    open_ = base.as_array(near_one, "near_one", 1, "(G,): one share per gate")
+    if len(shut) != len(names) or len(open_) != len(names):
+        raise ValueError(f"`near_zero` ({len(shut)}) and `near_one` ({len(open_)}) need one share "
+                         f"per gate name ({len(names)})")
+    along = None
+    if forget_along is not None and ax is None:
+        along = base.as_array(forget_along, "forget_along", 1, "(T,): mean forget gate per step",
+                              finite=False)
+    if ax is None and along is not None:
+        fig = Figure(figsize=base.DEFAULT_SIZE)
+        ax, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1.2, 1.0]})
+    else:
+        fig, ax = base.figure_and_axes(ax)
+        ax2 = None
+    y = np.arange(len(names), dtype=np.float64)
+    ax.barh(y - 0.18, shut, height=0.36, color=base.MUTED, label="near 0 (shut)")
+    ax.barh(y + 0.18, open_, height=0.36, color=base.ACCENT, label="near 1 (open)")
+    ax.set_yticks(y, names)
+    ax.set_xlim(0, 1)
+    ax.set_xlabel("share of gate values")
+    base.tidy(ax)
+    ax.legend(frameon=False, fontsize="small")
+    ax.set_title("gate activity", loc="left")
+    if ax2 is not None:
+        k = np.arange(1, len(along) + 1)
+        ax2.plot(k, along, color=base.INK, marker="o" if len(along) <= 60 else None, markersize=3)
+        ax2.set_ylim(0, 1)
+        base.integer_ticks(ax2.xaxis)
+        base.tidy(ax2)
+        ax2.set_xlabel("step k")
+        ax2.set_ylabel("mean forget gate")
+        ax2.set_title("what the cell keeps", loc="left")
+    return fig

@@ -1,6 +1,10 @@
-"""The Elman network as pure JAX functions: states, outputs, loss, class predictions.
+"""The recurrent network as pure JAX functions: states, outputs, loss, class predictions.
 
-    a_t = x_t U + h_{t-1} V + b,   h_t = phi(a_t),   o_t = h_t W + c
+    Elman:  a_t = x_t U + h_{t-1} V + b,   h_t = phi(a_t),   o_t = h_t W + c
+
+``cell="gru"`` or ``"lstm"`` swaps the state update for a gated cell
+(``_cells.gru_step``, ``_cells.lstm_step``; layouts in ``init_params``); the
+output layer o_t = h_t W + c is the same for every cell.
 
 Batch-major at the surface (xs (B, T, I) or (T, I)), time-major inside the
 scan. ``activation`` is either a name (static: one program per name) or an
@@ -11,7 +15,8 @@ has no branch).
 Mask: a False step is padding; the state is held across it (h_t = h_{t-1})
 and it adds no loss term. Many-to-one uses the output at the last step.
 
-``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT);
+``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT)
+for Elman and through ``_gated.states_fast`` for the gated cells;
 ``_hidden_states_autodiff`` keeps the plain autodiff scan for tests and benchmarks.
 """
 from __future__ import annotations
@@ -24,16 +29,22 @@ import numpy as np
 from jax import lax
 
 from . import _scan
+from . import _gated
 from ._names import ACTIVATIONS, MODES, TASKS
-from ._cells import get_activation
+from ._cells import GATE_BLOCKS, get_activation, get_cell
 
 _PARAM_SHAPES = {"U": "(I, H)", "V": "(H, H)", "b": "(H,)", "W": "(H, O)", "c": "(O,)"}
+_LAYOUT = {  # what each cell's dict holds, for error messages
+    "elman": "U (I, H), V (H, H), b (H,), W (H, O), c (O,)",
+    "gru": "U (I, 3H), V (H, 3H), b (3H,), bn (H,), W (H, O), c (O,)",
+    "lstm": "U (I, 4H), V (H, 4H), b (4H,), W (H, O), c (O,)",
+}
 
 
 class _Inputs(NamedTuple):
     """Checked, time-major, batched inputs of one call."""
 
-    params: dict  # U (I,H) V (H,H) b (H,) W (H,O) c (O,), all of `dtype`
+    params: dict  # the cell's dict (init_params), all of `dtype`
     xs: jax.Array  # (T, B, I)
     mask: Optional[jax.Array]  # (T, B, 1) bool, or None
     h0: jax.Array  # (B, H)
@@ -59,35 +70,46 @@ def _float_dtype(arrays):
     return jnp.float64 if any(jnp.asarray(a).dtype == jnp.float64 for a in arrays) else jnp.float32
 
 
-def _check_params(params):
+def _check_params(params, cell="elman"):
+    names = get_cell(cell).param_names
     if not isinstance(params, dict):
-        raise TypeError(f"`params` must be a dict with keys U, V, b, W, c; got {type(params).__name__}")
-    missing = [k for k in _PARAM_SHAPES if k not in params]
+        raise TypeError(f"`params` must be a dict with keys {', '.join(names)}; "
+                        f"got {type(params).__name__}")
+    missing = [k for k in names if k not in params]
     if missing:
-        raise ValueError(f"`params` lacks {missing}; it needs U {_PARAM_SHAPES['U']}, V (H, H), "
-                         "b (H,), W (H, O), c (O,) (make them with rnnkit.init_params)")
-    p = {k: _as_array(f"params['{k}']", params[k]) for k in _PARAM_SHAPES}
-    if p["U"].ndim != 2:
-        raise ValueError(f"`params['U']` has shape {p['U'].shape}; expected (I, H)")
-    n_in, n_hid = p["U"].shape
+        raise ValueError(f"`params` lacks {missing}; cell={cell!r} needs {_LAYOUT[cell]} "
+                         "(make them with rnnkit.init_params(..., cell=...))")
+    extra = sorted(set(params) - set(names))
+    if extra:
+        raise ValueError(f"`params` holds {extra}, which cell={cell!r} does not use; it needs "
+                         f"{_LAYOUT[cell]}: pass the cell the params were made for as `cell=`")
+    p = {k: _as_array(f"params['{k}']", params[k]) for k in names}
+    k = len(GATE_BLOCKS[cell])
+    if p["U"].ndim != 2 or p["U"].shape[1] % k:
+        want = "(I, H)" if k == 1 else f"(I, {k}H)"
+        raise ValueError(f"`params['U']` has shape {p['U'].shape}; expected {want} for cell={cell!r}")
+    n_in, n_hid = p["U"].shape[0], p["U"].shape[1] // k
     if p["W"].ndim != 2:
         raise ValueError(f"`params['W']` has shape {p['W'].shape}; expected (H, O) with H = {n_hid}")
     n_out = p["W"].shape[1]
-    expected = {"V": (n_hid, n_hid), "b": (n_hid,), "W": (n_hid, n_out), "c": (n_out,)}
-    for k, shape in expected.items():
-        if p[k].shape != shape:
-            raise ValueError(f"`params['{k}']` has shape {p[k].shape}; expected {shape} "
-                             f"{_PARAM_SHAPES[k]} for I = {n_in}, H = {n_hid}, O = {n_out}")
-    for k, v in p.items():
+    expected = {"V": (n_hid, k * n_hid), "b": (k * n_hid,), "W": (n_hid, n_out), "c": (n_out,)}
+    if cell == "gru":
+        expected["bn"] = (n_hid,)
+    for name, shape in expected.items():
+        if p[name].shape != shape:
+            raise ValueError(f"`params['{name}']` has shape {p[name].shape}; expected {shape} "
+                             f"for cell={cell!r}, I = {n_in}, H = {n_hid}, O = {n_out} "
+                             f"(the layout: {_LAYOUT[cell]})")
+    for name, v in p.items():
         if not jnp.issubdtype(v.dtype, jnp.floating):
-            raise TypeError(f"`params['{k}']` has dtype {v.dtype}; expected a float dtype")
+            raise TypeError(f"`params['{name}']` has dtype {v.dtype}; expected a float dtype")
     return p
 
 
-def _prepare(params, xs, mask, h0) -> _Inputs:
+def _prepare(params, xs, mask, h0, cell="elman") -> _Inputs:
     """Check every array argument and bring it to the time-major batched form."""
-    p = _check_params(params)
-    n_in, n_hid = p["U"].shape
+    p = _check_params(params, cell)
+    n_in, n_hid = p["U"].shape[0], p["V"].shape[0]
     xs = _as_array("xs", xs)
     if xs.ndim not in (2, 3):
         raise ValueError(f"`xs` has shape {xs.shape}; expected (T, I) or (B, T, I) with I = {n_in}")
@@ -146,11 +168,16 @@ def _resolve_activation(activation):
                     "or an integer scalar (its index)")
 
 
-def _states(inp: _Inputs, act, fast: bool):
+def _states(inp: _Inputs, act, fast: bool, cell: str = "elman"):
     """Hidden states (T, B, H); a traced activation index switches around the whole scan."""
-    fn = _scan.states_fast if fast else _scan.states_autodiff
     p = inp.params
-    args = (inp.xs, p["U"], p["V"], p["b"], inp.h0, inp.mask)
+    if cell == "elman":
+        fn = _scan.states_fast if fast else _scan.states_autodiff
+        args = (inp.xs, p["U"], p["V"], p["b"], inp.h0, inp.mask)
+    else:
+        gated = _gated.states_fast if fast else _gated.states_autodiff
+        fn = lambda name, *a: gated(cell, name, *a)  # noqa: E731
+        args = (inp.xs, p, inp.h0, inp.mask)
     if isinstance(act, str):
         return fn(act, *args)
     branches = [lambda a, name=name: fn(name, *a) for name in ACTIVATIONS]
@@ -168,32 +195,35 @@ def _to_surface(a, batched):
     return jnp.swapaxes(a, 0, 1) if batched else a[:, 0]
 
 
-def hidden_states(params, xs, *, activation="tanh", h0=None, mask=None):
+def hidden_states(params, xs, *, activation="tanh", h0=None, mask=None, cell="elman"):
     """The state h_t after every step.
 
     Args:
-      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,).
+      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,) for Elman; the
+        gated cells' layouts are in ``init_params``.
       xs: inputs (B, T, I) or (T, I).
-      activation: a name in ACTIVATIONS, or its index as an integer (scalar array).
-      h0: initial state (H,) or (B, H); zeros when None.
-      mask: (B, T) or (T,) bool; a False step holds the state.
+      activation: a name in ACTIVATIONS, or its index as an integer (scalar array);
+        for gated cells the candidate (and LSTM cell-output) nonlinearity.
+      h0: initial state (H,) or (B, H); zeros when None (an LSTM's c starts at zero).
+      mask: (B, T) or (T,) bool; a False step holds the state (h and c).
+      cell: "elman" (default), "gru" or "lstm".
 
     Returns:
       (B, T, H) or (T, H).
     """
     act = _resolve_activation(activation)
-    inp = _prepare(params, xs, mask, h0)
-    return _to_surface(_states(inp, act, fast=True), inp.batched)
+    inp = _prepare(params, xs, mask, h0, cell)
+    return _to_surface(_states(inp, act, True, cell), inp.batched)
 
 
-def _hidden_states_autodiff(params, xs, *, activation="tanh", h0=None, mask=None):
+def _hidden_states_autodiff(params, xs, *, activation="tanh", h0=None, mask=None, cell="elman"):
     """``hidden_states`` whose gradient is plain autodiff of the scan (tests, benchmarks)."""
     act = _resolve_activation(activation)
-    inp = _prepare(params, xs, mask, h0)
-    return _to_surface(_states(inp, act, fast=False), inp.batched)
+    inp = _prepare(params, xs, mask, h0, cell)
+    return _to_surface(_states(inp, act, False, cell), inp.batched)
 
 
-def outputs(params, xs, *, activation="tanh", h0=None, mask=None):
+def outputs(params, xs, *, activation="tanh", h0=None, mask=None, cell="elman"):
     """The output o_t = h_t W + c after every step (raw: logits for classification).
 
     Args: as ``hidden_states``.
@@ -202,8 +232,8 @@ def outputs(params, xs, *, activation="tanh", h0=None, mask=None):
       (B, T, O) or (T, O).
     """
     act = _resolve_activation(activation)
-    inp = _prepare(params, xs, mask, h0)
-    hs = _states(inp, act, fast=True)  # (T, B, H)
+    inp = _prepare(params, xs, mask, h0, cell)
+    hs = _states(inp, act, True, cell)  # (T, B, H)
     return _to_surface(_project_out(hs, inp.params), inp.batched)
 
 
@@ -265,13 +295,13 @@ def _mean_over(terms, w):
     return total / jnp.maximum(jnp.sum(w), 1).astype(terms.dtype)
 
 
-def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast):
+def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast, cell="elman"):
     _check_choice("task", task, TASKS)
     _check_choice("mode", mode, MODES)
     act = _resolve_activation(activation)
-    inp = _prepare(params, xs, mask, h0)
+    inp = _prepare(params, xs, mask, h0, cell)
     y = _prepare_targets(ys, inp, task, mode)
-    hs = _states(inp, act, fast)  # (T, B, H)
+    hs = _states(inp, act, fast, cell)  # (T, B, H)
     n_out = inp.params["W"].shape[1]
     if mode == "many-to-many":
         o = _project_out(hs, inp.params)  # (T, B, O)
@@ -296,7 +326,7 @@ def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast):
 
 
 def loss(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",
-         mask=None, h0=None):
+         mask=None, h0=None, cell="elman"):
     """Mean loss of the network on (xs, ys); its gradient is the fast BPTT.
 
     Regression: mean squared error over counted terms and output units (no 1/2).
@@ -313,6 +343,7 @@ def loss(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-
       mode: "many-to-one" (the last step) or "many-to-many" (every step).
       mask: (B, T) or (T,) bool; False steps hold the state and add no loss term.
       h0: initial state (H,) or (B, H); zeros when None.
+      cell: "elman" (default), "gru" or "lstm" (layouts in ``init_params``).
 
     Returns:
       a scalar.
@@ -320,16 +351,16 @@ def loss(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-
     Example:
       >>> g = jax.grad(loss)(params, xs, ys, activation="tanh", mode="many-to-one")
     """
-    return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast=True)
+    return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, True, cell)
 
 
 def _loss_autodiff(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",
-                   mask=None, h0=None):
+                   mask=None, h0=None, cell="elman"):
     """``loss`` whose gradient is plain autodiff of the scan (tests, benchmarks)."""
-    return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast=False)
+    return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, False, cell)
 
 
-def predict_classes(params, xs, *, activation, mode, mask=None, h0=None):
+def predict_classes(params, xs, *, activation, mode, mask=None, h0=None, cell="elman"):
     """The most likely class (argmax of the outputs).
 
     Args: as ``loss``, without ys.
@@ -338,6 +369,6 @@ def predict_classes(params, xs, *, activation, mode, mask=None, h0=None):
       int32 many-to-one (B,) (or () unbatched); many-to-many (B, T) (or (T,)).
     """
     _check_choice("mode", mode, MODES)
-    o = outputs(params, xs, activation=activation, mask=mask, h0=h0)  # (B, T, O) or (T, O)
+    o = outputs(params, xs, activation=activation, mask=mask, h0=h0, cell=cell)  # (B, T, O) or (T, O)
     o = o[..., -1, :] if mode == "many-to-one" else o
     return jnp.argmax(o, axis=-1).astype(jnp.int32)

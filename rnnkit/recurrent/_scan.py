@@ -25,7 +25,7 @@ import jax
 import jax.numpy as jnp
 from jax import lax
 
-from ._cells import get_activation
+from ._cells import get_activation, get_cell
 
 
 def _rows(a):
@@ -139,3 +139,37 @@ def _fast_bwd(act, res, g):
 
 
 states_fast.defvjp(_fast_fwd, _fast_bwd)
+
+
+def scan_cell(cell: str, act: str, xs, params, h0, mask, eps=None, with_gates: bool = False):
+    """Any cell over time by ``lax.scan`` of its step (the plain path: autodiff differentiates it).
+
+    A False mask step holds the whole state (h, and c for LSTM). ``eps`` adds a
+    perturbation to h after every step (the gradient-through-time diagnostic
+    differentiates with respect to it; zero changes nothing).
+
+    Args:
+      cell: a name in CELLS (static).  act: activation name (static).
+      xs: (T, B, I).  params: the cell's dict.  h0: (B, H); an LSTM's c starts at zero.
+      mask: (T, B, 1) bool or None.  eps: (T, B, H) or None.
+      with_gates: also return the gate values of every step.
+
+    Returns:
+      hs (T, B, H); with_gates: (hs, gates), gates a tuple of (T, B, H) arrays in
+      the order of the cell's gate blocks (empty for Elman).
+    """
+    c = get_cell(cell)
+    phi = get_activation(act).value
+    state0 = (h0,) if c.n_state == 1 else (h0, jnp.zeros_like(h0))
+
+    def step(state, inp):
+        x, m, e = inp
+        new, gates = c.step(params, state, x, phi)
+        if m is not None:
+            new = tuple(jnp.where(m, a, b) for a, b in zip(new, state))  # padding holds the state
+        if e is not None:
+            new = (new[0] + e,) + new[1:]
+        return new, ((new[0], gates) if with_gates else new[0])
+
+    _, out = lax.scan(step, state0, (xs, mask, eps))
+    return out

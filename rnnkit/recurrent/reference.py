@@ -1,4 +1,4 @@
-"""The specification: a plain NumPy Elman network, hand-written BPTT, finite differences.
+"""The specification: plain NumPy Elman, GRU and LSTM networks, hand-written BPTT, finite differences.
 
 Slow and readable on purpose; float64 throughout. The JAX model (``rnnkit.loss``
 and friends) must agree with these functions, and the tests hold it to that.
@@ -8,6 +8,23 @@ Row-vector convention, parameters shared by every step:
     a_t = x_t U + h_{t-1} V + b      U (I, H), V (H, H), b (H,)
     h_t = phi(a_t)                   (held, h_t = h_{t-1}, on a padded step)
     o_t = h_t W + c                  W (H, O), c (O,)
+
+GRU (``cell="gru"``), as torch.nn.GRU computes it (Cho et al. 2014 with the
+reset gate applied after the recurrent product; the torch.nn.GRU docs' formula),
+gate blocks [r | z | n] of width H along the last axis:
+
+    r = sigma(x U_r + h V_r + b_r)      z = sigma(x U_z + h V_z + b_z)
+    n = phi(x U_n + b_n + r * (h V_n + bn))
+    h' = (1 - z) * n + z * h
+
+LSTM (``cell="lstm"``) with a forget gate and no peepholes (Hochreiter &
+Schmidhuber 1997; Gers, Schmidhuber & Cummins 2000), as torch.nn.LSTM, blocks
+[i | f | g | o]:
+
+    i, f, o = sigma(.), g = phi(.)  of  x U + h V + b
+    c' = f * c + i * g,   h' = o * phi(c')
+
+A padded step holds the whole state (h and c).
 
 Loss: regression, the mean of (o - y)^2 over counted terms and output units
 (no 1/2); classification, the mean softmax cross-entropy over counted terms.
@@ -34,8 +51,17 @@ def _choice(name, value, allowed):
         raise ValueError(f"`{name}` (={value!r}) is unknown; use one of {allowed}")
 
 
-def _as64(params):
-    return {k: np.asarray(params[k], dtype=np.float64) for k in ("U", "V", "b", "W", "c")}
+_NAMES = {"elman": ("U", "V", "b", "W", "c"), "gru": ("U", "V", "b", "bn", "W", "c"),
+          "lstm": ("U", "V", "b", "W", "c")}
+
+
+def _as64(params, cell="elman"):
+    _choice("cell", cell, tuple(_NAMES))
+    return {k: np.asarray(params[k], dtype=np.float64) for k in _NAMES[cell]}
+
+
+def _sigma(a):
+    return 1.0 / (1.0 + np.exp(-a))
 
 
 def _batched(xs, mask, h0, n_hidden):
@@ -69,22 +95,75 @@ def _run(p, x, m, h0, activation):
     return a, hs, os
 
 
-def forward(params, xs, *, activation="tanh", h0=None, mask=None):
+def _run_gru(p, x, m, h0, activation):
+    """GRU forward pass on batched inputs; keeps every gate for BPTT."""
+    _choice("activation", activation, tuple(_PHI))
+    phi, _ = _PHI[activation]
+    B, T, _ = x.shape
+    H = p["V"].shape[0]
+    keep = {k: np.zeros((B, T, H)) for k in ("r", "z", "n", "an", "hn")}
+    hs = np.zeros((B, T, H))
+    h = h0
+    for t in range(T):
+        ax = x[:, t] @ p["U"] + p["b"]  # (B, 3H)
+        ah = h @ p["V"]  # (B, 3H)
+        r = _sigma(ax[:, :H] + ah[:, :H])
+        z = _sigma(ax[:, H:2 * H] + ah[:, H:2 * H])
+        hn = ah[:, 2 * H:] + p["bn"]  # the recurrent part of the candidate, before the reset gate
+        an = ax[:, 2 * H:] + r * hn
+        n = phi(an)
+        h = np.where(m[:, t, None], (1 - z) * n + z * h, h)
+        hs[:, t] = h
+        for k, v in (("r", r), ("z", z), ("n", n), ("an", an), ("hn", hn)):
+            keep[k][:, t] = v
+    return keep, hs, hs @ p["W"] + p["c"]
+
+
+def _run_lstm(p, x, m, h0, activation):
+    """LSTM forward pass on batched inputs; keeps gates and cell states for BPTT."""
+    _choice("activation", activation, tuple(_PHI))
+    phi, _ = _PHI[activation]
+    B, T, _ = x.shape
+    H = p["V"].shape[0]
+    keep = {k: np.zeros((B, T, H)) for k in ("i", "f", "g", "o", "ag", "c", "c_prev")}
+    hs = np.zeros((B, T, H))
+    h, c = h0, np.zeros_like(h0)
+    for t in range(T):
+        a = x[:, t] @ p["U"] + h @ p["V"] + p["b"]  # (B, 4H)
+        i, f, o = _sigma(a[:, :H]), _sigma(a[:, H:2 * H]), _sigma(a[:, 3 * H:])
+        g = phi(a[:, 2 * H:3 * H])
+        real = m[:, t, None]
+        keep["c_prev"][:, t] = c
+        c_new = f * c + i * g
+        h = np.where(real, o * phi(c_new), h)
+        c = np.where(real, c_new, c)
+        hs[:, t] = h
+        for k, v in (("i", i), ("f", f), ("g", g), ("o", o), ("ag", a[:, 2 * H:3 * H]), ("c", c_new)):
+            keep[k][:, t] = v
+    return keep, hs, hs @ p["W"] + p["c"]
+
+
+_RUN = {"elman": _run, "gru": _run_gru, "lstm": _run_lstm}
+
+
+def forward(params, xs, *, activation="tanh", h0=None, mask=None, cell="elman"):
     """States and outputs of every step.
 
     Args:
-      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,).
+      params: dict U (I, H), V (H, H), b (H,), W (H, O), c (O,) for Elman; the
+        gated layouts as ``rnnkit.init_params`` (GRU adds bn (H,); blocks of width H).
       xs: (B, T, I) or (T, I).
       activation: "tanh", "sigmoid", "relu" or "linear".
       h0: initial state (H,) or (B, H); zeros when None.
       mask: (B, T) or (T,) bool; a False step holds the state.
+      cell: "elman", "gru" or "lstm".
 
     Returns:
       hs (B, T, H) and os (B, T, O); without the B axis for unbatched xs.
     """
-    p = _as64(params)
+    p = _as64(params, cell)
     x, m, h, batched = _batched(xs, mask, h0, p["V"].shape[0])
-    _, hs, os = _run(p, x, m, h, activation)
+    _, hs, os = _RUN[cell](p, x, m, h, activation)
     return (hs, os) if batched else (hs[0], os[0])
 
 
@@ -124,16 +203,16 @@ def _loss_and_dout(os, ys, m, task, mode, batched):
 
 
 def loss(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",
-         mask=None, h0=None):
+         mask=None, h0=None, cell="elman"):
     """The scalar loss (same conventions as ``rnnkit.loss``)."""
-    p = _as64(params)
+    p = _as64(params, cell)
     x, m, h, batched = _batched(xs, mask, h0, p["V"].shape[0])
-    _, _, os = _run(p, x, m, h, activation)
+    _, _, os = _RUN[cell](p, x, m, h, activation)
     return _loss_and_dout(os, ys, m, task, mode, batched)[0]
 
 
 def bptt(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",
-         mask=None, h0=None):
+         mask=None, h0=None, cell="elman"):
     """Loss and gradients by hand-written backpropagation through time.
 
     The equations of Goodfellow, Bengio & Courville, Deep Learning (2016),
@@ -145,11 +224,16 @@ def bptt(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-
         dL/dh_{t-1} = da_t V^T  (+ dh_t on a padded step, whose state is held)
         dU = sum_t x_t^T da_t   dV = sum_t h_{t-1}^T da_t   db = sum_t da_t
 
+    The gated cells have their own backward steps (``_bptt_gru``, ``_bptt_lstm``).
+
     Args: as ``loss``.
 
     Returns:
       (loss, grads) with grads a dict of the same shapes as params.
     """
+    if cell != "elman":
+        _choice("cell", cell, tuple(_NAMES))
+        return _GATED_BPTT[cell](_as64(params, cell), xs, ys, activation, task, mode, mask, h0)
     p = _as64(params)
     x, m, h0_, batched = _batched(xs, mask, h0, p["V"].shape[0])
     _choice("activation", activation, tuple(_PHI))
@@ -179,12 +263,12 @@ def finite_difference_grads(params, xs, ys, *, eps=1e-6, **model_kw):
     Args:
       params, xs, ys: as ``loss``.
       eps: the step; about 1e-6 balances truncation and rounding in float64.
-      **model_kw: activation, task, mode, mask, h0.
+      **model_kw: activation, task, mode, mask, h0, cell.
 
     Returns:
       dict of gradients with the shapes of params.
     """
-    p = _as64(params)
+    p = _as64(params, model_kw.get("cell", "elman"))
     grads = {}
     for k, v in p.items():
         gk = np.zeros_like(v)
@@ -196,3 +280,87 @@ def finite_difference_grads(params, xs, ys, *, eps=1e-6, **model_kw):
             gk[idx] = (loss(plus, xs, ys, **model_kw) - loss(minus, xs, ys, **model_kw)) / (2 * eps)
         grads[k] = gk
     return grads
+
+
+def _bptt_gru(p, xs, ys, activation, task, mode, mask, h0):
+    """GRU loss and gradients by hand-written BPTT (chain rule through the forward above).
+
+    With dh = dL/dh_t (from o_t and from step t+1), on a real step:
+
+        dn = dh (1 - z)          dz = dh (h_{t-1} - n)        dL/dh_{t-1} gets dh z
+        da_n = dn phi'(a_n)      dr = da_n hn   (hn = h_{t-1} V_n + bn)    dhn = da_n r
+        da_r = dr r (1 - r)      da_z = dz z (1 - z)
+        dU += x^T [da_r da_z da_n]      db += [da_r da_z da_n]
+        dV += h_{t-1}^T [da_r da_z dhn] dbn += dhn
+        dL/dh_{t-1} += [da_r da_z dhn] V^T
+    """
+    x, m, h0_, batched = _batched(xs, mask, h0, p["V"].shape[0])
+    _, dphi = _PHI[activation]
+    keep, hs, os = _run_gru(p, x, m, h0_, activation)
+    L, d_os = _loss_and_dout(os, ys, m, task, mode, batched)
+    T = x.shape[1]
+    g = {k: np.zeros_like(v) for k, v in p.items()}
+    g["W"] = np.einsum("bth,bto->ho", hs, d_os)
+    g["c"] = d_os.sum(axis=(0, 1))
+    dh_next = np.zeros_like(h0_)
+    for t in reversed(range(T)):
+        dh = d_os[:, t] @ p["W"].T + dh_next  # (B, H)
+        real = m[:, t, None]
+        r, z, n, an, hn = (keep[k][:, t] for k in ("r", "z", "n", "an", "hn"))
+        h_prev = hs[:, t - 1] if t > 0 else h0_
+        dn = dh * (1 - z)
+        dz = dh * (h_prev - n)
+        da_n = dn * dphi(an)
+        dr = da_n * hn
+        dhn = da_n * r
+        da_r = dr * r * (1 - r)
+        da_z = dz * z * (1 - z)
+        dax = np.where(real, np.concatenate([da_r, da_z, da_n], axis=1), 0.0)  # (B, 3H)
+        dah = np.where(real, np.concatenate([da_r, da_z, dhn], axis=1), 0.0)  # (B, 3H)
+        g["U"] += x[:, t].T @ dax
+        g["b"] += dax.sum(axis=0)
+        g["V"] += h_prev.T @ dah
+        g["bn"] += np.where(real, dhn, 0.0).sum(axis=0)
+        dh_next = dah @ p["V"].T + np.where(real, dh * z, dh)  # a padded step passes dh on
+    return L, g
+
+
+def _bptt_lstm(p, xs, ys, activation, task, mode, mask, h0):
+    """LSTM loss and gradients by hand-written BPTT.
+
+    With dh = dL/dh_t and dc = dL/dc_t from step t+1, on a real step:
+
+        dc += dh o phi'(c_t)     do = dh phi(c_t)
+        di = dc g    df = dc c_{t-1}    dg = dc i    dL/dc_{t-1} = dc f
+        da = [di i(1-i), df f(1-f), dg phi'(a_g), do o(1-o)]
+        dU += x^T da    dV += h_{t-1}^T da    db += da    dL/dh_{t-1} = da V^T
+    """
+    x, m, h0_, batched = _batched(xs, mask, h0, p["V"].shape[0])
+    phi, dphi = _PHI[activation]
+    keep, hs, os = _run_lstm(p, x, m, h0_, activation)
+    L, d_os = _loss_and_dout(os, ys, m, task, mode, batched)
+    T = x.shape[1]
+    g = {k: np.zeros_like(v) for k, v in p.items()}
+    g["W"] = np.einsum("bth,bto->ho", hs, d_os)
+    g["c"] = d_os.sum(axis=(0, 1))
+    dh_next = np.zeros_like(h0_)
+    dc_next = np.zeros_like(h0_)
+    for t in reversed(range(T)):
+        dh = d_os[:, t] @ p["W"].T + dh_next  # (B, H)
+        real = m[:, t, None]
+        i, f, gg, o, ag, c, c_prev = (keep[k][:, t] for k in ("i", "f", "g", "o", "ag", "c", "c_prev"))
+        h_prev = hs[:, t - 1] if t > 0 else h0_
+        dc = dc_next + dh * o * dphi(c)
+        do = dh * phi(c)
+        da = np.concatenate([dc * gg * i * (1 - i), dc * c_prev * f * (1 - f),
+                             dc * i * dphi(ag), do * o * (1 - o)], axis=1)  # (B, 4H)
+        da = np.where(real, da, 0.0)
+        g["U"] += x[:, t].T @ da
+        g["V"] += h_prev.T @ da
+        g["b"] += da.sum(axis=0)
+        dh_next = da @ p["V"].T + np.where(real, 0.0, dh)
+        dc_next = np.where(real, dc * f, dc_next)
+    return L, g
+
+
+_GATED_BPTT = {"gru": _bptt_gru, "lstm": _bptt_lstm}

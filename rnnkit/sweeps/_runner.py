@@ -51,7 +51,7 @@ WORKER_ENV = {
     "MKL_NUM_THREADS": "1",
 }
 # Fields that change neither the windows nor the scaled data (they only shape training).
-TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "optimizer", "lr",
+TRAINING_FIELDS = ("hidden", "activation", "init", "recurrent_scale", "cell", "optimizer", "lr",
                    "weight_decay", "epochs", "batch_size", "clip", "patience", "seed")
 _ENV_LOCK = threading.Lock()
 MAX_WORKERS = 1024  # worker processes or runs in flight
@@ -181,7 +181,7 @@ def _end_workers(pool: cf.ProcessPoolExecutor) -> None:
 def _program_group(config: Config, shapes: Optional[dict]) -> tuple:
     """What tells two runs' training programs apart (parameter shapes, padded data shapes,
     static choices); runs in one group share a program."""
-    return (config.hidden, config.optimizer, config.batch_size, config.clip is None, config.init,
+    return (config.cell, config.hidden, config.optimizer, config.batch_size, config.clip is None, config.init,
             config.dtype, tuple(sorted((shapes or {}).items())))
 
 

@@ -28,7 +28,7 @@ import jax.numpy as jnp
 import numpy as np
 from jax import lax
 
-from ..recurrent._cells import init_elman_traceable
+from ..recurrent._cells import init_traceable
 from ..recurrent._model import loss as model_loss
 from ..recurrent._model import outputs as model_outputs
 from ._optim import hyperparams, make_optimizer
@@ -131,7 +131,7 @@ def _terms(mask, valid, mode, dtype):
     return n.astype(dtype)
 
 
-def _split_loss(params, series, split, act, *, task, mode, steps, batch):
+def _split_loss(params, series, split, act, *, task, mode, steps, batch, cell):
     """Mean loss over the real windows of a split, in batches; NaN when it has none."""
     dtype = params["W"].dtype
     n_batches = (split.n + batch - 1) // batch
@@ -143,7 +143,7 @@ def _split_loss(params, series, split, act, *, task, mode, steps, batch):
         starts = lax.dynamic_slice(split.starts, (at,), (batch,))
         lengths = lax.dynamic_slice(split.lengths, (at,), (batch,))
         x, y, mask = gather(series, starts, lengths, valid, steps=steps, mode=mode)
-        value = model_loss(params, x, y, activation=act, task=task, mode=mode, mask=mask)
+        value = model_loss(params, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
         c = _terms(mask, valid, mode, dtype)
         return i + 1, total + value * c, count + c
 
@@ -176,7 +176,7 @@ class EpochStats(NamedTuple):
     finite: jax.Array  # () bool: every loss and gradient norm was finite
 
 
-def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps):
+def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell):
     import optax  # loaded by the first training, not by `import rnnkit` (about 0.1 s)
 
     # A placeholder value for each hyperparameter: updates read the real ones from the state.
@@ -191,7 +191,7 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
         n_batches = (train.n + batch - 1) // batch
 
         def loss_fn(p, x, y, mask):
-            return model_loss(p, x, y, activation=act, task=task, mode=mode, mask=mask)
+            return model_loss(p, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
 
         def body(carry):
             i, params, opt_state, total, count, norms, finite = carry
@@ -214,7 +214,7 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
         i, params, opt_state, total, count, norms, finite = lax.while_loop(
             lambda c: (c[0] < n_batches) & c[-1], body, init)
         val_loss = _split_loss(params, series, val, act, task=task, mode=mode,
-                               steps=steps, batch=val_batch)
+                               steps=steps, batch=val_batch, cell=cell)
         stats = EpochStats(total / jnp.maximum(count, 1), norms / jnp.maximum(i, 1).astype(dtype),
                            val_loss, i, finite)
         return (params, opt_state, key), stats
@@ -222,36 +222,36 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
     return jax.jit(epoch, compiler_options=_COMPILER_OPTIONS)
 
 
-def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, steps):
+def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell="elman"):
     """The cached jitted epoch function for these static choices.
 
     ``f(state, series, train, val, act) -> (state, EpochStats)`` with state
     (params, opt_state, key) and ``act`` the int32 activation index. Array
     shapes (rows, features, outputs, hidden, numbers of windows) are the only
-    other things that trigger a new compile.
+    other things that trigger a new compile. ``cell`` is static: one program per cell.
     """
     key = ("epoch", task, mode, optimizer, bool(clipping), np.dtype(dtype).name,
-           int(batch), int(val_batch), int(steps))
+           int(batch), int(val_batch), int(steps), str(cell))
     with _LOCK:
         if key not in _CACHE:
             _CACHE[key] = _build_epoch(task, mode, optimizer, bool(clipping), np.dtype(dtype),
-                                       int(batch), int(val_batch), int(steps))
+                                       int(batch), int(val_batch), int(steps), str(cell))
         return _CACHE[key]
 
 
-def _build_init(optimizer, clipping, dtype, scheme, n_in, hidden, n_out):
+def _build_init(optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cell):
     factory = make_optimizer(optimizer, clipping, dtype)
 
     def init(seed, scale, hyper):
         # The seed's key is split in two: the first half initialises, the second shuffles.
         k_init, k_shuffle = jax.random.split(jax.random.key(seed))
-        params = init_elman_traceable(k_init, n_in, hidden, n_out, scheme, scale, dtype)
+        params = init_traceable(cell, k_init, n_in, hidden, n_out, scheme, scale, dtype)
         return params, factory(**hyper).init(params), k_shuffle
 
     return jax.jit(init, compiler_options=_COMPILER_OPTIONS)
 
 
-def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out):
+def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cell="elman"):
     """The cached jitted ``f(seed, scale, hyper) -> (params, opt_state, key)``.
 
     The initial training state as ONE compiled program: done op by op, its
@@ -262,33 +262,33 @@ def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out):
     ``compile_count`` (it is no training or evaluation program).
     """
     key = ("init", optimizer, bool(clipping), np.dtype(dtype).name, str(scheme), int(n_in),
-           int(hidden), int(n_out))
+           int(hidden), int(n_out), str(cell))
     with _LOCK:
         if key not in _CACHE:
             _CACHE[key] = _build_init(optimizer, bool(clipping), np.dtype(dtype), str(scheme),
-                                      int(n_in), int(hidden), int(n_out))
+                                      int(n_in), int(hidden), int(n_out), str(cell))
         return _CACHE[key]
 
 
-def _build_outputs(mode, steps):
+def _build_outputs(mode, steps, cell):
     def run(params, series: Series, starts, lengths, valid, act):
         _count_trace()
         x, _, mask = gather(series, starts, lengths, valid, steps=steps, mode=mode)
-        o = model_outputs(params, x, activation=act, mask=mask)  # (B, steps, O)
+        o = model_outputs(params, x, activation=act, mask=mask, cell=cell)  # (B, steps, O)
         # Many-to-one: the last step; padded steps after the real end held the state.
         return o[:, -1] if mode == "many-to-one" else o
 
     return jax.jit(run, compiler_options=_COMPILER_OPTIONS)
 
 
-def outputs_program(*, mode, steps):
+def outputs_program(*, mode, steps, cell="elman"):
     """The cached jitted ``f(params, series, starts, lengths, valid, act) -> outputs``.
 
     Returns (B, O) for many-to-one, (B, steps, O) for many-to-many (raw outputs:
     logits for classification), for one batch of B windows.
     """
-    key = ("outputs", mode, int(steps))
+    key = ("outputs", mode, int(steps), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build_outputs(mode, int(steps))
+            _CACHE[key] = _build_outputs(mode, int(steps), str(cell))
         return _CACHE[key]

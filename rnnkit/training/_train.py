@@ -36,7 +36,7 @@ HISTORY_COLUMNS = ("epoch", "train_loss", "val_loss", "grad_norm", "lr", "second
 class TrainOutcome(NamedTuple):
     """What ``train`` returns."""
 
-    params: dict  # numpy arrays in the config dtype: U (I,H) V (H,H) b (H,) W (H,O) c (O,)
+    params: dict  # numpy arrays in the config dtype, the layout of init_params(cell=config.cell)
     history: pd.DataFrame  # one row per epoch run, columns HISTORY_COLUMNS
     status: str  # "ok" | "diverged at epoch N" | "stopped early at epoch N" | "stopped by user at epoch N"
     best_epoch: int  # epoch (1-based) whose parameters are returned; 0 = the initial ones
@@ -159,7 +159,7 @@ def initial_state(prepared, config: Config):
         raise ValueError(f"`config.init` (={config.init!r}) is unknown; use one of {INITS}")
     program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype, scheme=config.init,
                                   n_in=prepared.n_inputs, hidden=config.hidden,
-                                  n_out=prepared.n_outputs)
+                                  n_out=prepared.n_outputs, cell=config.cell)
     hyper = hyperparams(config.optimizer, config.lr, config.clip, config.weight_decay, dtype)
     return program(np.asarray(config.seed, np.int32), np.asarray(config.recurrent_scale, dtype), hyper)
 
@@ -193,7 +193,7 @@ def _check_call(prepared, config, stop, on_epoch):
 def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: bool = True,
           stop: Optional[threading.Event] = None,
           on_epoch: Optional[Callable[[dict], None]] = None) -> TrainOutcome:
-    """Train an Elman network on the training windows of ``prepared``.
+    """Train a recurrent network (``config.cell``) on the training windows of ``prepared``.
 
     Each epoch: a fresh seeded shuffle of the training windows, minibatches of
     ``config.batch_size`` (the last one filled with zero-weight entries), one
@@ -215,7 +215,7 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         must equal the config's).
       config: the model and training fields used here: hidden, activation, init,
         recurrent_scale, optimizer, lr, weight_decay, epochs, batch_size, clip,
-        patience, seed, dtype.
+        patience, seed, dtype, cell.
       shapes: padding targets from ``shape_plan`` (keys window, n_train, n_val,
         rows; any subset): runs of a sweep padded to the same shapes share one
         compiled program. Window padding is at the front with masked steps, so
@@ -310,7 +310,7 @@ def _setup(prepared, config: Config, dims: Dict[str, int]):
     name, clipping = program_key(config.optimizer, config.clip)
     program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
                                    clipping=clipping, dtype=dtype, batch=batch,
-                                   val_batch=val_batch, steps=dims["window"])
+                                   val_batch=val_batch, steps=dims["window"], cell=config.cell)
     return state, _Run(program, _series(prepared, dtype, dims),
                        jax.tree.map(jnp.asarray, train_split), jax.tree.map(jnp.asarray, val_split),
                        jnp.asarray(activation_index(config.activation)))
@@ -338,7 +338,7 @@ def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience
 
 
 def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Optional[dict] = None,
-             batch_size: Optional[int] = None) -> np.ndarray:
+             batch_size: Optional[int] = None, cell: Optional[str] = None) -> np.ndarray:
     """Network outputs for every window of a split, in scaled units, batch by batch.
 
     Windows are gathered by index inside one compiled batch program, so memory
@@ -347,7 +347,7 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
     dtype, not on the split or its number of windows.
 
     Args:
-      params: dict U (I,H) V (H,H) b (H,) W (H,O) c (O,), numpy or jax arrays
+      params: the cell's dict (``init_params``), numpy or jax arrays
         (their dtype is the compute dtype).
       prepared: the Prepared the windows come from.
       split: "train", "val" or "test".
@@ -355,6 +355,7 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
       shapes: optional padding targets (``shape_plan``), to share the program
         of differently-windowed runs; the results do not change.
       batch_size: windows per batch; None picks one from window and hidden size.
+      cell: "elman", "gru" or "lstm"; None takes ``prepared.config.cell``.
 
     Returns:
       numpy array in the params' dtype: many-to-one (N, O), many-to-many (N, T, O),
@@ -378,7 +379,8 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
         series = _series(prepared, dtype, dims)
         whole = _split(prepared, split, _round_up(n, batch_size))
         p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in params.items()}
-        program = _epoch.outputs_program(mode=mode, steps=dims["window"])
+        program = _epoch.outputs_program(mode=mode, steps=dims["window"],
+                                         cell=prepared.config.cell if cell is None else cell)
         parts = []
         for at in range(0, n, batch_size):
             valid = at + np.arange(batch_size) < n  # (batch,)
