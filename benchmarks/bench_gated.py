@@ -124,7 +124,11 @@ def main(argv=None):
                     help="bind this process to one core (XLA and torch on one thread each): on a "
                          "shared, oversubscribed machine torch's OpenMP threads stall, and one core "
                          "each compares the two engines' own work")
+    ap.add_argument("--cells", default="gru,lstm", help="comma-separated cells to time (default gru,lstm)")
     args = ap.parse_args(argv)
+    cells = tuple(c for c in args.cells.split(",") if c)
+    if not cells or any(c not in ("gru", "lstm") for c in cells):
+        ap.error(f"--cells (={args.cells!r}) must name gru and/or lstm, comma-separated")
     if args.one_core:  # before jax and torch start their thread pools
         os.sched_setaffinity(0, {sorted(os.sched_getaffinity(0))[0]})
     shapes = SMOKE_SHAPES if args.smoke else SHAPES[:4] if args.quick else SHAPES
@@ -138,7 +142,7 @@ def main(argv=None):
     print(f"{'cell':>5} {'B,T,I,H':>18} {'fast ms':>9} {'autodiff ms':>12} {'torch ms':>9} "
           f"{'autodiff/fast':>14} {'torch/fast':>11} {'best/best':>10} {'grad rel diff':>14}")
     rows = []
-    for cell in ("gru", "lstm"):
+    for cell in cells:
         for B, T, I, H in shapes:
             fast, plain, rel = jax_runners(cell, B, T, I, H)
             rounds = timed_rounds([fast, plain, torch_runner(cell, B, T, I, H)], 5 * min_s, min_reps,
@@ -160,7 +164,7 @@ def main(argv=None):
         print(f"WARNING: load {load[0]} exceeds the {os.cpu_count()} cores; torch's threads lose more "
               "than XLA's under oversubscription, so the ratios flatter rnnkit in this run", flush=True)
     targets = []
-    for cell in ("gru", "lstm"):
+    for cell in cells:
         mine = [r for r in rows if r["cell"] == cell]
         for r in mine:
             name = "x".join(map(str, r["shape"]))
