@@ -675,7 +675,7 @@ def test_a_failed_config_write_keeps_the_old_file(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("text,where", [
     ('{"window": 0}', "$.window"), ('{"hidden": 2.5}', "$.hidden"), ('{"windw": 3}', "windw"),
-    ('{"format": "rnnkit.experiment", "version": 1, "config": {"task": "ranking"}}', "$.config.task"),
+    ('{"format": "rnnkit.experiment", "version": 2, "config": {"task": "ranking"}}', "$.config.task"),
     ("[1, 2]", "object"), ("{not json", "not JSON"), ('{"lr": NaN}', "NaN"),
 ])
 def test_load_config_refuses_bad_files_naming_the_field(tmp_path, text, where):

@@ -177,8 +177,10 @@ def gradient_check_on_data(df, config, *, n_windows: int = 4):
     x, y, mask = prep.windows("train")
     k = min(n_windows, len(x))
     key = jax.random.PRNGKey(config.seed)
-    params = init_params(key, prep.n_inputs, config.hidden, prep.n_outputs, scheme=config.init,
+    params = init_params(key, prep.n_inputs, config.hidden, prep.net_outputs, scheme=config.init,
                          recurrent_scale=config.recurrent_scale)
+    if prep.leads > 1:  # the network's outputs are the leads, side by side
+        y = y.reshape(len(y), -1)
     kw = dict(activation=config.activation, task=config.task, mode=config.mode)
     if mask is not None:
         kw["mask"] = mask[:k]

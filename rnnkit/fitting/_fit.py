@@ -14,7 +14,8 @@ from typing import Optional
 import numpy as np
 import pandas as pd
 
-from ..evaluation._baselines import baseline_predictions, fit_baselines, prepared_mase_scale
+from ..evaluation._baselines import baseline_predictions, fit_baselines, prepared_mase_scale, training_rows
+from ..evaluation._intervals import by_lead, half_widths, interval_scores
 from ..data._config import Config
 from ..data._errors import DataError
 from ..data._prepare import prepare
@@ -49,18 +50,70 @@ def softmax(logits: np.ndarray) -> np.ndarray:
 
 
 def network_predictions(params: dict, prepared, split: str, shapes=None) -> np.ndarray:
-    """The network on every window of a split: regression (N, [T,] O) in original units,
-    classification (N, [T,] K) probabilities; float64."""
+    """The network on every window of a split: regression (N, O), (N, L, O) with several
+    leads, or (N, T, O), in original units (transform undone); classification (N, [T,] K)
+    probabilities; float64."""
     out = evaluate(params, prepared, split, shapes=shapes)
     if prepared.classes is not None:
         return softmax(out)
-    return prepared.scaler.inverse_targets(out)
+    if prepared.leads > 1:
+        out = out.reshape(len(out), prepared.leads, -1)  # (N, L, O), lead-major outputs
+    return prepared.original(out, prepared.target_rows(split))
 
 
 def _truth(prepared, actual, split):
     rows = prepared.target_rows(split)
     return prepared.targets[rows] if prepared.classes is not None else actual[rows]
 
+
+def extrapolation_note(prepared) -> tuple:
+    """A note when the test targets lie far outside the training range (the network extrapolates).
+
+    "Far": more than a quarter of the test targets beyond the training minimum or
+    maximum by over a tenth of the training range (common practice, no source).
+    """
+    if prepared.classes is not None or len(prepared.starts["test"]) == 0:
+        return ()
+    train = prepared.levels[training_rows(prepared)]  # (K, O)
+    test = prepared.levels[np.unique(prepared.target_rows("test"))]  # (M, O)
+    lo, hi = train.min(axis=0), train.max(axis=0)
+    room = 0.1 * np.maximum(hi - lo, 1e-12)
+    out = ()
+    for j, name in enumerate(prepared.target_names):
+        above = float(np.mean(test[:, j] > hi[j] + room[j]))
+        below = float(np.mean(test[:, j] < lo[j] - room[j]))
+        if max(above, below) > 0.25:
+            where = (f"{above:.0%} above the training maximum {hi[j]:.4g}" if above >= below
+                     else f"{below:.0%} below the training minimum {lo[j]:.4g}")
+            fix = ("`transform`='diff' or 'log-diff' (differences stay in range when the level moves)"
+                   if prepared.config.transform in ("none", "log") else "a longer training part")
+            out += (f"the test values of {name!r} lie far outside the training range ({where}): the "
+                    f"network must extrapolate, which it does poorly; try {fix}",)
+    return out
+
+
+def interval_widths(prepared, outputs: dict, val_pred: dict) -> tuple:
+    """Conformal half widths per model from the validation residuals.
+
+    Returns:
+      ({model: (C, L, O) half widths}, notes): C = len(config.coverage).
+    """
+    levels = prepared.config.coverage
+    if prepared.classes is not None or not levels or len(prepared.starts["val"]) == 0:
+        return {}, ()
+    y = by_lead(prepared.levels[prepared.target_rows("val")], prepared.leads)
+    q, notes = {}, ()
+    for model, pred in val_pred.items():
+        pred = by_lead(pred, prepared.leads)
+        if not np.all(np.isfinite(pred)):
+            continue
+        q[model], capped = half_widths(np.abs(y - pred), levels)
+        if model == "rnn" and capped.any():
+            short = [f"{v:g}" for v, c in zip(levels, capped) if c]
+            notes += (f"only {len(y)} validation windows: too few for a conformal interval at level(s) "
+                      f"{', '.join(short)}, which use the largest validation error and cover less than "
+                      "they say; give the validation part more rows",)
+    return q, notes
 
 def _scores(y, pred, prepared, scale, model, split, names):
     """Metric dict for one model and split; NaN throughout when the model's output is not finite."""
@@ -81,28 +134,66 @@ def score(prepared, actual: np.ndarray, outputs: dict):
 
     Returns:
       (metrics DataFrame indexed by model, columns "<split>_<metric>" for val and
-      test (NaN for a split without windows); confusion dict split -> DataFrame).
+      test (NaN for a split without windows), then for regression the test part's
+      interval scores "test_coverage_<level>", "test_width_<level>",
+      "test_interval_score_<level>"; confusion dict split -> DataFrame).
+      ``score_all`` also gives the scores per lead and the interval widths.
     """
+    metrics, matrices, _, _, _ = score_all(prepared, actual, outputs)
+    return metrics, matrices
+
+
+def score_all(prepared, actual: np.ndarray, outputs: dict):
+    """``score`` plus (metrics_by_lead, {model: half widths (C, L, O)}, notes)."""
     regression = prepared.classes is None
     names = REGRESSION_METRICS if regression else CLASSIFICATION_METRICS
     scale = prepared_mase_scale(prepared) if regression else None
     fitted = fit_baselines(prepared)
     table = {"rnn": {}}
+    lead_table = {}
     matrices = {}
+    found_by_split = {}
     for split in SCORED:
         if len(prepared.starts[split]) == 0:
             continue
         y = _truth(prepared, actual, split)
         found = {"rnn": outputs[split]}
         found.update(baseline_predictions(prepared, split, fitted))
+        found_by_split[split] = (y, found)
         for model, pred in found.items():
             m = _scores(y, pred, prepared, scale, model, split, names)
             table.setdefault(model, {}).update({f"{split}_{k}": v for k, v in m.items()})
+            if regression:  # lead by lead (one lead: the same numbers)
+                yl, pl = by_lead(y, prepared.leads), by_lead(pred, prepared.leads)
+                for k in range(yl.shape[1]):
+                    m = _scores(yl[:, k], pl[:, k], prepared, scale, model, split, names)
+                    lead_table.setdefault((model, k + 1), {}).update(
+                        {f"{split}_{n}": v for n, v in m.items()})
         if not regression and np.all(np.isfinite(outputs[split])):
             matrices[split] = confusion(y, np.argmax(outputs[split], axis=-1), prepared.classes)
     columns = [f"{s}_{m}" for s in SCORED for m in names]
-    metrics = pd.DataFrame.from_dict(table, orient="index").reindex(columns=columns)
-    return metrics.astype(np.float64).rename_axis("model"), matrices
+    q, notes = ({}, ())
+    if regression and "val" in found_by_split:
+        q, notes = interval_widths(prepared, outputs, found_by_split["val"][1])
+    extra = []
+    if q and "test" in found_by_split:
+        y, found = found_by_split["test"]
+        levels = prepared.config.coverage
+        yl = by_lead(y, prepared.leads)
+        for model, widths in q.items():
+            pl = by_lead(found[model], prepared.leads)
+            whole = interval_scores(yl, pl, widths, levels)
+            table[model].update({f"test_{k}": float(v) for k, v in whole.items()})
+            for k, v in interval_scores(yl, pl, widths, levels, axis=(0, 2)).items():
+                for lead, value in enumerate(v, start=1):
+                    lead_table[(model, lead)][f"test_{k}"] = float(value)
+        extra = [f"test_{k}" for k in whole]
+    metrics = pd.DataFrame.from_dict(table, orient="index").reindex(columns=columns + extra)
+    by_lead_frame = pd.DataFrame.from_dict(lead_table, orient="index")
+    if len(by_lead_frame):
+        by_lead_frame = by_lead_frame.reindex(columns=columns + extra).astype(np.float64)
+        by_lead_frame.index = pd.MultiIndex.from_tuples(by_lead_frame.index, names=["model", "lead"])
+    return metrics.astype(np.float64).rename_axis("model"), matrices, by_lead_frame, q, notes
 
 
 class FitResult:
@@ -116,7 +207,15 @@ class FitResult:
       history: DataFrame, one row per epoch: epoch, train_loss, val_loss,
         grad_norm (before clipping), lr, seconds.
       metrics: DataFrame indexed by model ("rnn" and the baselines), columns
-        "<split>_<metric>" for val and test, in the target's original units.
+        "<split>_<metric>" for val and test, in the target's original units, every
+        lead pooled; regression adds the test part's interval scores per coverage
+        level: test_coverage_80, test_width_80, test_interval_score_80, ...
+      metrics_by_lead: DataFrame indexed by (model, lead), the same columns lead by lead
+        (regression; empty for classification).
+      interval_widths: (C, L, O) conformal half widths of the network's intervals, one
+        per coverage level, lead and target (None without validation windows).
+      notes: sentences about choices made and risks seen (data preparation, intervals,
+        a test part far outside the training range).
       confusion: dict split -> DataFrame (classification; empty for regression).
       diagnostics: Diagnostics of the trained network (measured on first use).
       prepared: the Prepared it was trained on (None when loaded without data).
@@ -126,8 +225,12 @@ class FitResult:
 
     def __init__(self, *, params, spec: DataSpec, status, history, metrics, confusion=None,
                  prepared=None, actual=None, best_epoch=0, compiles=0, seconds=0.0,
-                 diagnostics=None, outputs=None, labels=None):
+                 diagnostics=None, outputs=None, labels=None, metrics_by_lead=None,
+                 interval_widths=None, notes=()):
         self.params = params
+        self.metrics_by_lead = pd.DataFrame() if metrics_by_lead is None else metrics_by_lead
+        self.interval_widths = None if interval_widths is None else np.asarray(interval_widths, np.float64)
+        self.notes = tuple(notes)
         self.spec = spec
         self.config = spec.config
         self.status = status
@@ -258,8 +361,10 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
     actual = frame_actuals(df, prepared)
     outputs = {s: network_predictions(outcome.params, prepared, s, shapes)
                for s in SCORED if len(prepared.starts[s])}
-    metrics, matrices = score(prepared, actual, outputs)
+    metrics, matrices, by_lead_frame, widths, notes = score_all(prepared, actual, outputs)
+    notes = prepared.notes + notes + extrapolation_note(prepared)
     return FitResult(params=outcome.params, spec=spec_of(prepared, df.index.name),
+                     metrics_by_lead=by_lead_frame, interval_widths=widths.get("rnn"), notes=notes,
                      status=outcome.status, history=outcome.history, metrics=metrics,
                      confusion=matrices, prepared=prepared, actual=actual,
                      best_epoch=outcome.best_epoch, compiles=outcome.compiles,
@@ -296,6 +401,8 @@ def load_fit(path, df=None):
     # With the data attached, diagnostics are measured again (window_states(i) for any i).
     diagnostics = None if prepared is not None else parts["read_diagnostics"]()
     return FitResult(params=parts["params"], spec=spec, status=parts["status"], history=parts["history"],
-                     metrics=parts["metrics"], confusion=parts["confusion"], prepared=prepared,
+                     metrics=parts["metrics"], metrics_by_lead=parts["metrics_by_lead"],
+                     interval_widths=parts["interval_widths"], notes=parts["notes"],
+                     confusion=parts["confusion"], prepared=prepared,
                      actual=actual, best_epoch=parts["best_epoch"], compiles=parts["compiles"],
                      seconds=parts["seconds"], diagnostics=diagnostics, labels=labels)

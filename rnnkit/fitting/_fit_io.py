@@ -9,6 +9,7 @@ The folder (our own small layout):
     weights.npz       U, V, b, W, c (read back with allow_pickle=False)
     history.csv       one row per epoch
     metrics.csv       one row per model
+    metrics_by_lead.csv   one row per (model, lead), regression only
     confusion_<split>.csv   classification only
     diagnostics.npz   the measured Diagnostics (arrays only, no pickle)
 
@@ -33,7 +34,7 @@ from ..data._config import Config
 from ..data._windows import Scaler
 
 FORMAT = "rnnkit-fit"
-VERSION = 1
+VERSION = 2  # 2: horizon H means leads 1..H (multi-output); interval widths and notes stored
 PARAM_NAMES = ("U", "V", "b", "W", "c")
 _DIAG_ARRAYS = ("gradient_through_time", "singular_values", "eigenvalues", "saturation",
                 "window_state", "val_states", "val_times")
@@ -59,7 +60,11 @@ def _document(result) -> dict:
         "rnnkit_version": __version__,
         "config": result.config.to_dict(),
         "outcome": {"status": result.status, "best_epoch": result.best_epoch,
-                    "compiles": result.compiles, "seconds": result.seconds},
+                    "compiles": result.compiles, "seconds": result.seconds,
+                    "notes": list(result.notes)},
+        # conformal half widths (C levels, L leads, O targets), for forecasts from a loaded fit
+        "interval_widths": None if result.interval_widths is None else
+        [[[float(v) for v in row] for row in level] for level in result.interval_widths],
         "data": {
             "input_names": list(spec.input_names),
             "target_names": list(spec.target_names),
@@ -117,6 +122,8 @@ def save_fit(result, path) -> None:
         np.savez(tmp / "weights.npz", **{k: np.asarray(result.params[k]) for k in PARAM_NAMES})
         result.history.to_csv(tmp / "history.csv", index=False)
         result.metrics.to_csv(tmp / "metrics.csv", index=True)
+        if len(result.metrics_by_lead):
+            result.metrics_by_lead.to_csv(tmp / "metrics_by_lead.csv", index=True)
         for split, table in result.confusion.items():
             table.to_csv(tmp / f"confusion_{split}.csv")
         if diag is not None:
@@ -177,6 +184,9 @@ def read_fit(path) -> dict:
                          f"{FORMAT!r}); save one with result.save(path)")
     with open(path / "config.json", encoding="utf-8") as f:
         doc = json.load(f)
+    if doc.get("version") == 1:
+        raise ValueError(f"{str(path)!r} is a version 1 fit folder, whose `horizon` meant one value that "
+                         "many steps ahead (since version 2: leads 1..horizon at once); fit and save again")
     if doc.get("version") != VERSION:
         raise ValueError(f"{str(path)!r} has fit format version {doc.get('version')!r}; this rnnkit "
                          f"reads version {VERSION}")
@@ -191,8 +201,14 @@ def read_fit(path) -> dict:
         table.index = pd.Index(spec.classes, name="true")
         table.columns = pd.Index(spec.classes, name="predicted")
         confusion[file.stem[len("confusion_"):]] = table
+    by_lead = pd.DataFrame()
+    if (path / "metrics_by_lead.csv").exists():
+        by_lead = pd.read_csv(path / "metrics_by_lead.csv", index_col=[0, 1], float_precision="round_trip")
+    widths = doc.get("interval_widths")
     out = doc["outcome"]
     return dict(params=params, spec=spec, status=out["status"], history=history, metrics=metrics,
+                metrics_by_lead=by_lead, notes=tuple(out.get("notes", ())),
+                interval_widths=None if widths is None else np.asarray(widths, np.float64),
                 confusion=confusion, best_epoch=out["best_epoch"], compiles=out["compiles"],
                 seconds=out["seconds"],
                 read_diagnostics=lambda: _read_diagnostics(path / "diagnostics.npz"))
