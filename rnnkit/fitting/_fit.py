@@ -306,6 +306,38 @@ class FitResult:
         return prediction_frame(p, self.spec, actual, parts,
                                 zoned_labels(df, p.rows, self.config.time_column))
 
+    def forecast(self, steps: Optional[int] = None, df: Optional[pd.DataFrame] = None) -> pd.DataFrame:
+        """Forecasts past the end of the data, with conformal prediction intervals.
+
+        Args:
+          steps: how many future rows; None: the horizon (or, when the network reads
+            other input columns, as many rows as the frame gives their future values).
+            Beyond the horizon the forecast goes on in blocks of the horizon, each
+            block reading the forecasts before it as the target's past.
+          df: None for the training frame; or a frame with the fit's columns (a loaded
+            fit needs one). Rows at its end with an EMPTY target are future rows: when
+            the network reads inputs besides the target, they must carry those inputs'
+            future values (a missing one is an error naming the column and row).
+
+        Returns:
+          DataFrame indexed by the future time labels (the step read from the frame's
+          times: hourly, daily, monthly, quarterly, yearly..., or integers; future rows
+          keep their own labels), one row per step and sequence: the group column (with
+          several sequences), "lead" (1..steps), "forecast", then "lower_<level>" and
+          "upper_<level>" per coverage level (several targets: "<target>_forecast", ...),
+          and "calibrated" (False beyond the horizon, where the bounds are widened by
+          sqrt(lead / horizon) instead of measured). Original units.
+
+        The intervals are split conformal intervals from the validation errors: they hold
+        as far as the future behaves like the validation period.
+
+        Example:
+          >>> result.forecast(12)[["forecast", "lower_80", "upper_80"]]
+        """
+        from ._forecast import forecast
+
+        return forecast(self, steps, df)
+
     def save(self, path) -> None:
         """Write this result to a folder (atomically); read it back with ``rnnkit.load_fit``."""
         save_fit(self, path)
