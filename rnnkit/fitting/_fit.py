@@ -72,7 +72,8 @@ def extrapolation_note(prepared) -> tuple:
     "Far": more than a quarter of the test targets beyond the training minimum or
     maximum by over a tenth of the training range (common practice, no source).
     """
-    if prepared.classes is not None or len(prepared.starts["test"]) == 0:
+    if prepared.classes is not None or len(prepared.starts["test"]) == 0 \
+            or prepared.config.transform in ("diff", "log-diff"):  # differences need no new levels
         return ()
     train = prepared.levels[training_rows(prepared)]  # (K, O)
     test = prepared.levels[np.unique(prepared.target_rows("test"))]  # (M, O)
@@ -85,8 +86,7 @@ def extrapolation_note(prepared) -> tuple:
         if max(above, below) > 0.25:
             where = (f"{above:.0%} above the training maximum {hi[j]:.4g}" if above >= below
                      else f"{below:.0%} below the training minimum {lo[j]:.4g}")
-            fix = ("`transform`='diff' or 'log-diff' (differences stay in range when the level moves)"
-                   if prepared.config.transform in ("none", "log") else "a longer training part")
+            fix = "`transform`='diff' or 'log-diff' (differences stay in range when the level moves)"
             out += (f"the test values of {name!r} lie far outside the training range ({where}): the "
                     f"network must extrapolate, which it does poorly; try {fix}",)
     return out
