@@ -4,6 +4,7 @@
     rnnkit fit CONFIG.json --data FILE [--out DIR]
     rnnkit sweep SPACE.json --data FILE [--store runs.db] [--workers N] [--out DIR]
     rnnkit check-gradients CONFIG.json --data FILE
+    rnnkit forecast MODEL_DIR --data FILE [--steps N] --out FILE.csv
 
 Bad input ends with exit status 2 and one line on stderr that says what to fix.
 """
@@ -187,6 +188,27 @@ def gradient_check_on_data(df, config, *, n_windows: int = 4):
     return check_gradients(params, x[:k], y[:k], **kw)
 
 
+def cmd_forecast(args) -> int:
+    from ..data._atomic import write_text
+    from ..fitting._fit import load_fit
+
+    out = Path(args.out)
+    if out.suffix.lower() != ".csv":
+        raise UsageError(f"--out {args.out}: the forecast is written as CSV; give a .csv file name")
+    if out.is_dir():
+        raise UsageError(f"--out {args.out} is a folder; give a .csv file name")
+    if args.steps is not None and args.steps < 1:
+        raise UsageError(f"--steps {args.steps}: give a whole number >= 1 (default: the horizon)")
+    result = load_fit(args.model)
+    df = read_data(args.data, args.index_col, keep=result.config.time_column)
+    table = result.forecast(steps=args.steps, df=df)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    write_text(out, table.to_csv(index=True))
+    print(table.to_string(float_format=lambda v: f"{v:.4g}"))
+    print(f"wrote {out} ({len(table)} rows)")
+    return 0
+
+
 def cmd_check_gradients(args) -> int:
     from ..sweeps._export import load_config
 
@@ -249,6 +271,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="sweep-out", metavar="DIR", help="output folder (default sweep-out)")
     common(p)
     p.set_defaults(func=cmd_sweep)
+
+    p = sub.add_parser("forecast", help="forecast past the end of a data file with a saved model, "
+                       "with prediction intervals")
+    p.add_argument("model", metavar="MODEL_DIR", help="a fit folder (written by `rnnkit fit` or "
+                   "FitResult.save)")
+    p.add_argument("--steps", type=int, default=None, metavar="N",
+                   help="future steps (default: the model's horizon, or the rows of future inputs)")
+    p.add_argument("--out", required=True, metavar="FILE.csv", help="where to write the forecast")
+    common(p)
+    p.set_defaults(func=cmd_forecast)
 
     p = sub.add_parser("check-gradients", help="compare JAX gradients with hand-written BPTT "
                        "and finite differences on windows of your data")
