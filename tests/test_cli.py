@@ -115,8 +115,9 @@ def test_demo_quick_writes_everything(tmp_path):
     r = _run("demo", "--quick", "--out", str(tmp_path / "demo"), "--no-progress")
     assert r.returncode == 0, r.stderr[-2000:]
     out = tmp_path / "demo"
-    for name in ("results.csv", "best-config.json", "report.html"):
+    for name in ("results.csv", "best-config.json", "report.html", "forecast.csv"):
         assert (out / name).is_file(), name
+    assert "<h2>Forecast</h2>" in (out / "report.html").read_text()
     cfg = rnnkit.load_config(out / "best-config.json")
     assert cfg.target == "load_kw"
     assert "val_rmse" in r.stdout

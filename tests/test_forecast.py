@@ -282,3 +282,22 @@ def test_old_documents_are_refused_with_what_changed(tmp_path):
     doc = {"format": "rnnkit.experiment", "version": 1, "config": {"horizon": 3}}
     with pytest.raises(ValueError, match="leads 1..horizon"):
         rnnkit.load_config(doc)
+
+
+def test_fan_chart_draws_history_forecast_and_one_band_per_level(airline_fit):
+    from matplotlib.collections import PolyCollection
+
+    from rnnkit import plots
+
+    f = airline_fit.forecast()
+    fig = plots.fan_chart(airline_fit.predict()["actual"], f, recent=36)
+    ax = fig.axes[0]
+    bands = [c for c in ax.collections if isinstance(c, PolyCollection)]
+    assert len(bands) == 2  # 80 % and 95 %
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert labels == ["known", "95 % interval", "80 % interval", "forecast"]
+    known = ax.get_lines()[0].get_ydata()
+    assert len(known) == 36
+    assert "future" in airline_fit.figures()  # the fit forecasts from its own data: shown with its figures
+    with pytest.raises(ValueError, match="'forecast' column"):
+        plots.fan_chart(airline_fit.predict()["actual"], f.drop(columns="forecast"))

@@ -338,6 +338,14 @@ class FitResult:
 
         return forecast(self, steps, df)
 
+    def can_forecast(self) -> bool:
+        """True when forecast() can run from the training frame alone (the network reads only the
+        target's own past, so no future inputs are needed)."""
+        c = self.config
+        return (c.task == "regression" and c.mode == "many-to-one" and c.window != "full"
+                and self.spec.horizon >= 1 and self.prepared is not None
+                and list(self.spec.input_names) == list(self.spec.target_names))
+
     def save(self, path) -> None:
         """Write this result to a folder (atomically); read it back with ``rnnkit.load_fit``."""
         save_fit(self, path)
@@ -353,6 +361,8 @@ class FitResult:
         if self.prepared is not None and self.config.window != "full":
             pred = self.predict()
             figs["forecast"] = plots.forecast(pred) if regression else plots.class_forecast(pred)
+            if self.can_forecast():
+                figs["future"] = future_figure(self, self.forecast(), pred)
         d = self.diagnostics
         bound = 0.25 if d.activation == "sigmoid" else 1.0  # max |phi'|
         sigma = float(d.singular_values[0]) * bound
@@ -363,6 +373,26 @@ class FitResult:
         if len(d.val_states) >= 2:
             figs["hidden_path"] = plots.hidden_path(d.val_states)
         return figs
+
+
+def future_figure(result, future: pd.DataFrame, pred: Optional[pd.DataFrame] = None, recent: int = 120):
+    """plots.fan_chart of the last sequence's recent known values and its forecast.
+
+    Args:
+      result: the FitResult. future: its ``forecast()`` frame. pred: its ``predict()`` frame
+        (made when None; needs the training frame).
+    """
+    from .. import plots
+
+    pred = result.predict() if pred is None else pred
+    group = result.config.group_column
+    if group is not None and group in future.columns:
+        last = future[group].iloc[-1]
+        future = future[future[group] == last]
+        key = group if group in pred.columns else "sequence"
+        pred = pred[pred[key] == last]
+    cols = [c for c in pred.columns if c == "actual" or c.endswith("_actual")]
+    return plots.fan_chart(pred[cols[0]].rename(cols[0]), future, recent=recent)
 
 
 def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_epoch=None,
