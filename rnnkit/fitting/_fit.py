@@ -392,7 +392,8 @@ def future_figure(result, future: pd.DataFrame, pred: Optional[pd.DataFrame] = N
         key = group if group in pred.columns else "sequence"
         pred = pred[pred[key] == last]
     cols = [c for c in pred.columns if c == "actual" or c.endswith("_actual")]
-    return plots.fan_chart(pred[cols[0]].rename(cols[0]), future, recent=recent)
+    name = result.spec.target_names[0] if cols[0] == "actual" else cols[0][:-len("_actual")]
+    return plots.fan_chart(pred[cols[0]].rename(name), future, recent=recent)
 
 
 def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_epoch=None,
