@@ -69,13 +69,15 @@ def frame_actuals(df: pd.DataFrame, prepared: Prepared) -> np.ndarray:
     return np.where(np.isnan(raw), prepared.levels, raw)
 
 
-def prepare_like(df: pd.DataFrame, spec: DataSpec):
+def prepare_like(df: pd.DataFrame, spec: DataSpec, need_windows: bool = True):
     """Prepare a frame with a fit's scaler and class mapping: every window, one split.
 
     Args:
       df: a frame with the columns the fit used (the target may be missing: its
         actual values are then NaN). Never modified.
       spec: the fit's DataSpec.
+      need_windows: False lets a frame shorter than window + horizon through (a forecast
+        needs only the last window of known rows).
 
     Returns:
       (prepared, actual): a Prepared whose "train" starts hold EVERY window of
@@ -159,7 +161,7 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
         span = int(cfg.window) + spec.horizon
         starts = window_starts(np.zeros(n, np.int8), boundary, span)["train"]
         lengths, window = None, int(cfg.window)
-        if len(starts) == 0:
+        if len(starts) == 0 and need_windows:
             raise DataError(f"the frame has no complete window: a window needs window + horizon = {span} "
                             f"consecutive rows of one sequence, and the frame has {n} usable rows"
                             + ("" if gcode is None else " split over sequences")

@@ -110,7 +110,7 @@ def forecast(result, steps: Optional[int] = None, df: Optional[pd.DataFrame] = N
         known, future = _split_future(df, spec)
         if len(known) == 0:
             raise DataError("every row of the frame has an empty target; forecast() needs the known past")
-        p, _ = prepare_like(known, spec)
+        p, _ = prepare_like(known, spec, need_windows=False)
         z = zoned_labels(known, p.rows, cfg.time_column)
         labels = z if z is not None else pd.Index(p.index, name=spec.index_name)
     if not isinstance(labels, pd.Index):
