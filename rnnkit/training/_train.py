@@ -151,6 +151,9 @@ def activation_index(activation) -> np.ndarray:
 def initial_state(prepared, config: Config):
     """The training state ``train`` starts from: (params, opt_state, shuffling key).
 
+    ``prepared`` needs ``n_inputs`` and ``net_outputs`` (outputs x leads; anything with
+    only ``n_outputs`` is taken as one lead).
+
     One cached compiled program (``_epoch.init_program``) makes all of it; the
     seed, recurrent scale and optimizer hyperparameters are data.
     """
@@ -160,7 +163,7 @@ def initial_state(prepared, config: Config):
         raise ValueError(f"`config.init` (={config.init!r}) is unknown; use one of {INITS}")
     program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype, scheme=config.init,
                                   n_in=prepared.n_inputs, hidden=config.hidden,
-                                  n_out=prepared.net_outputs)
+                                  n_out=getattr(prepared, "net_outputs", prepared.n_outputs))
     hyper = hyperparams(config.optimizer, config.lr, config.clip, config.weight_decay, dtype)
     return program(np.asarray(config.seed, np.int32), np.asarray(config.recurrent_scale, dtype), hyper)
 
