@@ -1,6 +1,5 @@
 """Forecasting (issue 13): leads 1..H, reach-back evaluation windows, transforms, conformal
 intervals and forecast() past the end of the data, checked against outside references."""
-import math
 import warnings
 
 import numpy as np

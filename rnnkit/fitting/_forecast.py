@@ -94,8 +94,7 @@ def forecast(result, steps: Optional[int] = None, df: Optional[pd.DataFrame] = N
     T, L = int(spec.window), int(spec.horizon)
     targets = list(spec.target_names)
     O = len(targets)
-    feeds = cfg.target_as_input
-    fed = O if feeds else 0
+    fed = O if cfg.target_as_input else 0  # the target's own input columns come first
     extra_inputs = [c for c in spec.input_names if c not in targets]
 
     # 1. the data: known rows (prepared as the fit prepared its data) and future rows
