@@ -12,6 +12,7 @@ settings and peak memory of one never leak into another):
     bench_sweep.py         programs compiled, compile share, 2 workers vs 1
     bench_latency.py       cold and warm fit() of the default config on the demo data
     bench_train_memory.py  peak resident set of prepare + training on 10 million rows
+    bench_forecast.py      warm forecast() of 24 steps with intervals on the demo data
 
 RESULTS.md (written atomically) records the machine, the date, the versions,
 the command and how busy the machine was while the suite ran; RESULTS.json
@@ -178,7 +179,8 @@ def run_suite(mode: str) -> dict:
         for name, fn in (("step", lambda: step_benchmark(mode)),
                          ("sweep", lambda: _mine("bench_sweep.py", mode)),
                          ("latency", lambda: _mine("bench_latency.py", mode)),
-                         ("memory", lambda: _mine("bench_train_memory.py", mode))):
+                         ("memory", lambda: _mine("bench_train_memory.py", mode)),
+                         ("forecast", lambda: _mine("bench_forecast.py", mode))):
             t = time.perf_counter()
             print(f"== {name}", flush=True)
             parts[name] = fn()

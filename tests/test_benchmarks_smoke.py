@@ -14,7 +14,8 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 TARGET = re.compile(r"^TARGET (\S+): .+ \(target .+\) (PASS|MISS)$", re.MULTILINE)
 OURS = ("sweep.training_programs", "sweep.compile_share", "sweep.speedup_2_workers",
-        "latency.warm_fit", "latency.cold_fit", "memory.prepare_and_train_peak_rss")
+        "latency.warm_fit", "latency.cold_fit", "memory.prepare_and_train_peak_rss",
+        "forecast.warm_24_steps", "forecast.warm_24_steps_future_inputs")
 
 
 @pytest.mark.timeout(1200)
@@ -28,7 +29,7 @@ def test_run_py_smoke_reports_every_target(tmp_path):
         assert names.count(name) == 1, f"{name} reported {names.count(name)} times:\n{proc.stdout}"
     assert "failed" not in proc.stdout.split("wrote")[0], proc.stdout
     text = out.read_text()
-    for heading in ("## Targets", "## Sweep", "## Latency", "## Memory", "## Training step"):
+    for heading in ("## Targets", "## Sweep", "## Latency", "## Memory", "## Training step", "## Forecast"):
         assert heading in text
     for name in OURS:
         assert f"| {name} |" in text
