@@ -211,16 +211,17 @@ def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span, lab
         if split_codes is None:
             sizes = counts_by_fraction(n, f)
             t = span if targets is None else targets
-            # regression: two training windows (the linear AR baseline needs them, check_scorable)
+            # regression: the stated minimum gives two training windows (the linear AR baseline
+            # needs them); a training part of exactly one window is refused by check_scorable
             two = config.task == "regression" and span > 1
-            need = (span + two, t + config.gap, t + config.gap)
+            need = (span, t + config.gap, t + config.gap)
             if any(f[p] > 0 and sizes[p] < need[p] for p in range(3)):
                 what = (f"two windows, window + horizon + 1 = {span + 1} rows" if two
                         else f"window + horizon = {span} rows")
                 raise DataError(
                     f"too few rows: {n} rows split {list(f)} give {list(sizes)} rows to train/val/test, but "
                     f"training needs {what} and val and test {t} target row(s) each plus `gap` = "
-                    f"{config.gap}; the minimum is {min_rows(span, f, config.gap, t, need[0])} rows: "
+                    f"{config.gap}; the minimum is {min_rows(span, f, config.gap, t, span + two)} rows: "
                     "add rows or lower `window`/`horizon`/`gap`")
             part = chronological_parts(n, f)
         else:
