@@ -123,7 +123,20 @@ def render(summary: dict) -> str:
     lines += _latency_section(parts.get("latency", {}))
     lines += _first_result_section(parts.get("first_result", {}))
     lines += _memory_section(parts.get("memory", {}))
+    lines += _forecast_section(parts.get("forecast", {}))
     return "\n".join(lines) + "\n"
+
+
+def _forecast_section(part: dict) -> list:
+    out = ["", "## Forecast (bench_forecast.py)", ""] + _failed(part)
+    if "target_only" not in part:
+        return out
+    rows = [(key, part[key]["cold_seconds"], part[key].get("warm_median_seconds", ""), part[key]["programs"])
+            for key in ("target_only", "future_inputs")]
+    return out + [f"`result.forecast(24)` with 80 % and 95 % bounds on {part['rows']} demo rows (the fit "
+                  "is not timed): target only (horizon 12, two blocks), and with input columns "
+                  "(horizon 24, future inputs read from the frame).", ""] + \
+        _table(rows, ("forecast", "cold s", "warm median s", "programs compiled"))
 
 
 def _failed(part: dict) -> list:

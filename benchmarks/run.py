@@ -16,6 +16,7 @@ settings and peak memory of one never leak into another):
                            folder of compiled programs; loss surfaces batched vs the loop;
                            panel Train to last figure
     bench_train_memory.py  peak resident set of prepare + training on 10 million rows
+    bench_forecast.py      warm forecast() of 24 steps with intervals on the demo data
 
 RESULTS.md (written atomically) records the machine, the date, the versions,
 the command and how busy the machine was while the suite ran; RESULTS.json
@@ -184,7 +185,8 @@ def run_suite(mode: str) -> dict:
                          ("sweep", lambda: _mine("bench_sweep.py", mode)),
                          ("latency", lambda: _mine("bench_latency.py", mode)),
                          ("first_result", lambda: _mine("bench_first_result.py", mode)),
-                         ("memory", lambda: _mine("bench_train_memory.py", mode))):
+                         ("memory", lambda: _mine("bench_train_memory.py", mode)),
+                         ("forecast", lambda: _mine("bench_forecast.py", mode))):
             t = time.perf_counter()
             print(f"== {name}", flush=True)
             parts[name] = fn()

@@ -25,14 +25,21 @@ def _airline():
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(n=st.integers(20, 400), folds=st.integers(1, 8), test_size=st.integers(1, 30),
        lookback=st.integers(0, 30), val=st.floats(0.05, 0.6),
-       window=st.one_of(st.just("expanding"), st.integers(2, 300)))
-def test_no_training_or_scaling_row_at_or_after_its_folds_origin(n, folds, test_size, lookback, val, window):
+       window=st.one_of(st.just("expanding"), st.integers(2, 300)), cover=st.integers(1, 4))
+def test_no_training_or_scaling_row_at_or_after_its_folds_origin(n, folds, test_size, lookback, val, window,
+                                                                 cover):
+    # cover: rows one forecast's targets span (leads 1..cover); lookback 0 is what reach-back
+    # test windows give (they read inputs from before the block)
     try:
         plan = series_folds(n, folds, test_size=test_size, lookback=lookback, val_fraction=val,
-                            window=window)
+                            window=window, cover=cover)
     except rnnkit.DataError as e:
-        assert n - folds * test_size - lookback < 2 and "folds" in str(e)
+        if test_size < cover:
+            assert "test_size" in str(e) and str(cover) in str(e)
+        else:
+            assert n - folds * test_size - lookback < 2 and "folds" in str(e)
         return
+    assert test_size >= cover
     assert len(plan) == folds and plan[-1].end == n
     for k, f in enumerate(plan):
         train, valid, test = f.rows("train"), f.rows("val"), f.rows("test")
@@ -47,6 +54,8 @@ def test_no_training_or_scaling_row_at_or_after_its_folds_origin(n, folds, test_
             assert f.origin == plan[k - 1].end  # origins move forward block by block
         if window != "expanding":
             assert len(train) + len(valid) <= window
+        # validation holds what one window's targets need whenever a training row is left for it
+        assert len(valid) >= min(lookback + cover, len(train) + len(valid) - 1)
 
 
 @settings(max_examples=60, deadline=None)
@@ -96,11 +105,12 @@ def test_baselines_per_fold_match_pandas_on_airline():
             assert list(got["time"]) == list(target.index)
             np.testing.assert_allclose(got["error"].to_numpy(), err.to_numpy(), **METRIC)
         # MASE scale from the fold's training rows only (Hyndman & Koehler 2006): the rows before
-        # its validation part, which lies before the test inputs, which lie before the origin.
+        # its validation part, which ends at the origin (test windows read their inputs from
+        # the rows before their part, so the test part is exactly the forecast block).
         f = bt.fits[k]
         n_train = f.prepared.counts["rows_train"]
         train = y.iloc[:n_train]
-        assert n_train + f.prepared.counts["rows_val"] <= origin - 12
+        assert n_train + f.prepared.counts["rows_val"] == origin
         scale = (train - train.shift(12)).abs().mean()
         sn = bt.metrics.loc[(k + 1, "seasonal_naive")]
         np.testing.assert_allclose(sn["test_mase"], sn["test_mae"] / scale, **METRIC)
@@ -196,3 +206,55 @@ def test_folds_on_an_executor_equal_the_folds_in_turn():
     assert there.fits == [] and len(here.fits) == 4
     with pytest.raises(TypeError, match="`executor`"):
         rnnkit.backtest(df, cfg, folds=2, executor="two")
+
+
+def test_horizon_three_backtest_on_airline_scores_every_lead():
+    # aeon's Airline series (Box & Jenkins, "Time series analysis", series G): 144 monthly totals.
+    df = _airline()
+    H, B = 3, 12
+    bt = rnnkit.backtest(df, rnnkit.Config(target="passengers", window=12, horizon=H, dtype="float64",
+                                           **TINY), folds=3, test_size=B, progress=False)
+    y = df["passengers"]
+    e = bt.errors
+    assert sorted(e["lead"].unique()) == [1, 2, 3]
+    for k in range(3):
+        origin, end = 144 - B * (3 - k), 144 - B * (2 - k)
+        f = bt.fits[k].prepared
+        # nothing fitted at or after the origin; the validation part ends right before it
+        assert f.counts["rows_train"] + f.counts["rows_val"] == origin
+        fe = e[e.fold == k + 1]
+        # every row of the block is forecast, by every lead whose origin lies before the block
+        # ends: lead j covers rows origin + j - 1 .. end - H + j - 1 (the whole path in the block)
+        assert set(fe["row"]) == set(range(origin, end))
+        for j in range(1, H + 1):
+            for name, lag in (("persistence", j), ("seasonal_naive", 12)):
+                got = fe[(fe.model == name) & (fe.lead == j)]
+                rows = np.arange(origin + j - 1, end - H + j)
+                assert list(got["row"]) == list(rows)
+                assert (got["origin_row"] == got["row"] - j).all()
+                # Independent: persistence at lead j repeats y_{t-j}, the last value known at the
+                # origin; seasonal naive y_{t-12} (Hyndman & Athanasopoulos, FPP sec. 5.2).
+                want = y.iloc[rows].to_numpy() - y.shift(lag).iloc[rows].to_numpy()
+                np.testing.assert_allclose(got["error"].to_numpy(), want, **METRIC)
+        # the fold's per-lead scores are these errors' scores
+        m = bt.fits[k].metrics_by_lead
+        for j in range(1, H + 1):
+            err = fe[(fe.model == "persistence") & (fe.lead == j)]["error"]
+            np.testing.assert_allclose(m.loc[("persistence", j), "test_rmse"], np.sqrt((err ** 2).mean()),
+                                       **METRIC)
+    # The comparison: one loss per origin, the squared error averaged over the three leads, in
+    # fold and origin order; Diebold-Mariano/HLN with h = 3 (the common choice for an h-step
+    # path, Harvey, Leybourne & Newbold 1997). By lead: lead j alone with h = j.
+    def per_origin(model, lead=None):
+        x = e[(e.model == model) & ((e.lead == lead) if lead else True)]
+        return (x["error"] ** 2).groupby([x["fold"], x["origin_row"]]).mean().to_numpy()
+    net = per_origin("rnn")
+    assert len(net) == 3 * (B - H + 1)
+    for name in ("persistence", "seasonal_naive", "linear_ar"):
+        t = diebold_mariano(net, per_origin(name), horizon=H)
+        row = bt.comparison.loc[name]
+        np.testing.assert_allclose([row["statistic"], row["pvalue"]], [t.statistic, t.pvalue], **EXACT64)
+        assert row["n"] == len(net) and "mean over leads" in row["loss"]
+        for j in (1, 2, 3):
+            t = diebold_mariano(per_origin("rnn", j), per_origin(name, j), horizon=j)
+            np.testing.assert_allclose(bt.comparison_by_lead.loc[(name, j), "pvalue"], t.pvalue, **EXACT64)

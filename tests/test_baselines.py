@@ -211,18 +211,21 @@ def test_adapters_regression_original_units_and_groups():
     assert set(out) == {"persistence", "seasonal_naive", "linear_ar"}
     rows = p.target_rows("test")
     y = B.truth(p, "test")
+    assert rows.shape == (len(p.starts["test"]), 2)  # horizon 2: leads 1 and 2 of every window
     for v in out.values():
-        assert v.shape == y.shape == (len(rows), 1)
+        assert v.shape == y.shape == rows.shape + (1,)
     # original units straight from the caller's frame: persistence is the load at the
-    # last input row, which is the target row minus the horizon
+    # last input row, the same for both leads (Hyndman & Athanasopoulos, FPP, naive method)
     orig = df["load"].to_numpy()[p.rows]
-    np.testing.assert_allclose(out["persistence"][:, 0], orig[rows - 2], **EXACT64)
-    np.testing.assert_allclose(y[:, 0], orig[rows], **EXACT64)
-    # seasonal naive: 24 rows back when inside the sequence, else persistence
+    last = p.starts["test"] + p.window - 1
+    for k in range(2):
+        np.testing.assert_allclose(out["persistence"][:, k, 0], orig[last], **EXACT64)
+        np.testing.assert_allclose(y[:, k, 0], orig[last + k + 1], **EXACT64)
+    # seasonal naive: 24 rows before each lead's time when inside the sequence, else persistence
     src = rows - 24
     same = (src >= 0) & (p.groups[np.maximum(src, 0)] == p.groups[rows])
-    expect = np.where(same, orig[np.maximum(src, 0)], orig[rows - 2])
-    np.testing.assert_allclose(out["seasonal_naive"][:, 0], expect, **EXACT64)
+    expect = np.where(same, orig[np.maximum(src, 0)], orig[last][:, None])
+    np.testing.assert_allclose(out["seasonal_naive"][..., 0], expect, **EXACT64)
     assert (~same).any() and same.any()
     table = B.score_baselines(p)
     assert list(table.index) == ["persistence", "seasonal_naive", "linear_ar"]

@@ -15,7 +15,8 @@ ROOT = Path(__file__).resolve().parent.parent
 TARGET = re.compile(r"^TARGET (\S+): .+ \(target .+\) (PASS|MISS)$", re.MULTILINE)
 OURS = ("sweep.training_programs", "sweep.compile_share", "sweep.speedup_2_workers",
         "latency.warm_fit", "latency.cold_fit", "memory.prepare_and_train_peak_rss",
-        "first_result.fit_fresh_process_filled_cache", "first_result.train_to_last_figure_filled_cache")
+        "first_result.fit_fresh_process_filled_cache", "first_result.train_to_last_figure_filled_cache",
+        "forecast.warm_24_steps", "forecast.warm_24_steps_future_inputs")
 
 
 @pytest.mark.timeout(1200)
@@ -30,7 +31,7 @@ def test_run_py_smoke_reports_every_target(tmp_path):
     assert "failed" not in proc.stdout.split("wrote")[0], proc.stdout
     text = out.read_text()
     for heading in ("## Targets", "## Sweep", "## Latency", "## Memory", "## Training step",
-                    "## Time to first result"):
+                    "## Time to first result", "## Forecast"):
         assert heading in text
     for name in OURS:
         assert f"| {name} |" in text

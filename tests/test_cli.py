@@ -25,7 +25,7 @@ def data_csv(tmp_path_factory):
     return d, path, df
 
 
-@pytest.mark.parametrize("cmd", [[], ["demo"], ["fit"], ["sweep"], ["check-gradients"]])
+@pytest.mark.parametrize("cmd", [[], ["demo"], ["fit"], ["sweep"], ["check-gradients"], ["forecast"]])
 def test_help_on_every_command(cmd, capsys):
     with pytest.raises(SystemExit) as e:
         main([*cmd, "--help"])
@@ -115,8 +115,36 @@ def test_demo_quick_writes_everything(tmp_path):
     r = _run("demo", "--quick", "--out", str(tmp_path / "demo"), "--no-progress")
     assert r.returncode == 0, r.stderr[-2000:]
     out = tmp_path / "demo"
-    for name in ("results.csv", "best-config.json", "report.html"):
+    for name in ("results.csv", "best-config.json", "report.html", "forecast.csv"):
         assert (out / name).is_file(), name
+    assert "<h2>Forecast</h2>" in (out / "report.html").read_text()
     cfg = rnnkit.load_config(out / "best-config.json")
     assert cfg.target == "load_kw"
     assert "val_rmse" in r.stdout
+
+
+def test_forecast_command_writes_the_future_rows(data_csv, tmp_path, capsys):
+    import numpy as np
+    import pandas as pd
+
+    d, path, df = data_csv
+    cfg = rnnkit.Config(target="load_kw", window=12, hidden=4, epochs=2, horizon=6, missing="interpolate")
+    rnnkit.fit(df.iloc[:-6], cfg, progress=False).save(tmp_path / "model")
+    frame = df.copy()
+    frame.iloc[-6:, frame.columns.get_loc("load_kw")] = np.nan  # future rows: inputs known, target empty
+    frame.to_csv(tmp_path / "recent.csv")
+    out = tmp_path / "f.csv"
+    assert main(["forecast", str(tmp_path / "model"), "--data", str(tmp_path / "recent.csv"),
+                 "--out", str(out)]) == 0
+    back = pd.read_csv(out, index_col=0, parse_dates=True)
+    assert list(back.index) == list(df.index[-6:])
+    assert list(back.columns) == ["lead", "forecast", "lower_80", "upper_80", "lower_95", "upper_95",
+                                  "calibrated"]
+    assert "wrote" in capsys.readouterr().out
+    assert main(["forecast", str(tmp_path / "model"), "--data", str(tmp_path / "recent.csv"),
+                 "--out", str(tmp_path / "f.txt")]) == 2
+    assert ".csv" in capsys.readouterr().err
+    # more steps than rows of future inputs: one line naming what is missing
+    assert main(["forecast", str(tmp_path / "model"), "--data", str(tmp_path / "recent.csv"),
+                 "--steps", "9", "--out", str(out)]) == 2
+    assert "future row" in capsys.readouterr().err

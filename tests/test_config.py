@@ -46,6 +46,13 @@ BAD = [
     ("season", "weekly", {}),
     ("season", True, {}),
     ("short_sequences", "skip", {}),
+    ("transform", "sqrt", {}),
+    ("transform", "log", {"task": "classification"}),
+    ("transform", "diff", {"horizon": 0, "target_as_input": False}),  # no last known level
+    ("transform", "diff", {"mode": "many-to-many", "horizon": 2}),
+    ("coverage", (0.8, 1.0), {}),
+    ("coverage", (0.9, 0.9), {}),
+    ("coverage", 0.9, {}),
     ("hidden", 0, {}),
     ("hidden", 5000, {}),
     ("hidden", 8.0, {}),

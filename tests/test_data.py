@@ -51,17 +51,25 @@ def test_targets_match_frame_at_their_time(n, window, horizon, gap, mode, scale,
         rows = p.starts[split][:, None] + np.arange(window)[None, :]  # (N, T)
         want_x = df[p.input_names].to_numpy()[p.rows[rows]]
         np.testing.assert_allclose(p.scaler.inverse_inputs(x), want_x, **EXACT64)
-    # splits never overlap in time: every row of a train window comes before every row of a val window
+    # Targets of the parts never overlap in time: every target of a train window comes at least
+    # `gap` rows before every val target. Val/test windows may take inputs from earlier rows
+    # (their inputs reach back; on purpose since evaluation windows reach back, issue 13), but
+    # a training window never reads a val or test row.
     for early, late in (("train", "val"), ("val", "test")):
         if len(p.starts[late]):
-            assert window_rows(p, early).max() + gap < window_rows(p, late).min()
-            assert p.index[window_rows(p, early).max()] < p.index[window_rows(p, late).min()]
+            first_late = p.target_rows(late).min()
+            assert p.target_rows(early).max() + gap < first_late
+            assert p.index[p.target_rows(early).max()] < p.index[first_late]
+            if early == "train":
+                assert window_rows(p, "train").max() < first_late - gap
 
 
 @settings(max_examples=25, deadline=None)
-@given(values=st.lists(st.floats(-1e6, 1e6), min_size=40, max_size=120),
+@given(values=st.lists(st.floats(-1e6, 1e6).filter(lambda v: v == 0 or abs(v) > 1e-100),
+                       min_size=40, max_size=120),
        scale=st.sampled_from(["standard", "minmax"]))
 def test_inverse_scaling_returns_the_original_values(values, scale):
+    # (values below 1e-150 alone are refused: their squared errors underflow, test_meaningful_numbers)
     df = pd.DataFrame({"y": values})
     p = prepare(df, Config(window=3, scale=scale, dtype="float64"))
     back = p.scaler.inverse_inputs(p.inputs)[:, 0]
@@ -93,9 +101,11 @@ def test_chronological_split_matches_sklearn_unshuffled_split():
     train, rest = train_test_split(rows, test_size=0.3, shuffle=False)
     val, test = train_test_split(rest, test_size=0.5, shuffle=False)
     for split, ref in zip(SPLITS, (train, val, test)):
-        used = np.unique(window_rows(p, split))
-        np.testing.assert_array_equal(used, ref)  # each part's windows cover exactly its rows
-    assert p.counts["rows_train"] == len(train) and p.summary().query("item == 'val windows'")["count"].item() == 30 - 4
+        # training windows cover exactly the training rows; val and test windows reach back for
+        # their inputs, so there their TARGETS cover exactly the part's rows
+        used = np.unique(window_rows(p, split) if split == "train" else p.target_rows(split))
+        np.testing.assert_array_equal(used, ref)
+    assert p.counts["rows_train"] == len(train) and p.summary().query("item == 'val windows'")["count"].item() == 30  # every val row is a target
 
 
 @pytest.mark.parametrize("scale, ref", [("standard", StandardScaler), ("minmax", MinMaxScaler)])
@@ -194,7 +204,8 @@ def test_gap_rows_are_dropped_and_counted():
     p = prepare(hourly(300), Config(target="load", window=6, horizon=2, gap=5))
     d = dict(zip(p.dropped["reason"], p.dropped["rows"]))
     assert d == {"`gap` rows before val": 5, "`gap` rows before test": 5}
-    assert p.starts["val"][0] == p.counts["rows_train"] + 5 + 0  # val starts after the gap
+    assert p.target_rows("val").min() == p.counts["rows_train"] + 5  # val targets start after the gap
+    assert p.starts["val"][0] == p.counts["rows_train"] + 5 - 6  # ... their inputs reach back
 
 
 # ---------- missing values ----------
@@ -310,8 +321,9 @@ def test_irregular_spacing_with_season_auto():
 
 
 def test_too_few_rows_states_the_minimum():
-    msg = frame_untouched(hourly(40), Config(target="load", window=24, horizon=1), "too few rows")
-    # val needs 25 rows at 15 %: at least 25 / 0.15 rows, rounding decides the rest
+    msg = frame_untouched(hourly(30), Config(target="load", window=24, horizon=1), "too few rows")
+    # train needs two windows, 26 rows at 70 %: at least 26 / 0.7 rows, rounding decides the rest
+    # (val and test windows reach back for their inputs: one target row each is enough)
     minimum = int(msg.split("the minimum is ")[1].split()[0])
     prepare(hourly(minimum), Config(target="load", window=24, horizon=1))
     with pytest.raises(DataError):

@@ -61,7 +61,7 @@ def test_schema_choices_equal_config_choices():
                "missing": _config.MISSING, "short_sequences": _config.SHORT,
                "activation": _config.ACTIVATIONS, "init": _config.INITS,
                "optimizer": _config.OPTIMIZERS, "dtype": _config.DTYPES, "watch": _config.WATCHES,
-               "cell": _config.CELLS}
+               "cell": _config.CELLS, "transform": _config.TRANSFORMS}
     enums = {k: v["enum"] for k, v in CONFIG_SCHEMA["properties"].items() if "enum" in v}
     assert enums == {k: list(v) for k, v in choices.items()}
 
@@ -134,7 +134,7 @@ _WRONG = st.one_of(st.text(max_size=5), st.booleans(), st.floats(allow_nan=False
 def test_wrong_values_are_refused_naming_the_field(name, value, envelope):
     if _config_ok(Config(), {name: value}) and _schema_ok({name: value}):
         return  # the draw happens to be a valid value
-    doc = {"format": "rnnkit.experiment", "version": 1, "config": {name: value}} if envelope \
+    doc = {"format": "rnnkit.experiment", "version": 2, "config": {name: value}} if envelope \
         else {name: value}
     with pytest.raises(ValueError) as err:
         load_config(doc)
@@ -146,7 +146,7 @@ def test_wrong_values_are_refused_naming_the_field(name, value, envelope):
        envelope=st.booleans())
 def test_extra_keys_are_refused_naming_the_key(key, envelope):
     cfg = {"hidden": 8, key: 1}
-    doc = {"format": "rnnkit.experiment", "version": 1, "config": cfg} if envelope else cfg
+    doc = {"format": "rnnkit.experiment", "version": 2, "config": cfg} if envelope else cfg
     with pytest.raises(ValueError) as err:
         load_config(doc)
     assert repr(key) in str(err.value) or key in str(err.value)
@@ -160,7 +160,7 @@ def _good_doc():
 @pytest.mark.parametrize("change, where", [
     (lambda d: d.pop("config"), "'config' is a required property"),
     (lambda d: d.update(format="something.else"), "$.format"),
-    (lambda d: d.update(version=2), "$.version"),
+    (lambda d: d.update(version=3), "$.version"),
     (lambda d: d.update(extra=1), "'extra' was unexpected"),
     (lambda d: d["metric"].pop("value"), "$.metric"),
     (lambda d: d["metric"].update(value="low"), "$.metric.value"),
@@ -294,6 +294,9 @@ def test_export_load_fit_reproduces_the_recorded_metric(tmp_path):
     again = rnnkit.fit(df, config, progress=False)
     assert again.metrics.loc["rnn", "val_rmse"] == pytest.approx(doc["metric"]["value"], **REPRODUCE)
     for k, v in doc["metrics"].items():
-        split_at = k.find("val_") if "val_" in k else k.find("test_")
-        model, col = ("rnn", k) if split_at == 0 else (k[:split_at - 1], k[split_at:])
+        if k.startswith(("val_", "test_")):
+            model, col = "rnn", k
+        else:
+            split_at = min(i for i in (k.find("_val_"), k.find("_test_")) if i >= 0)
+            model, col = k[:split_at], k[split_at + 1:]
         assert again.metrics.loc[model, col] == pytest.approx(v, **REPRODUCE), k

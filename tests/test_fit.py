@@ -42,8 +42,11 @@ def test_noisy_sine_is_learned(sine, trained):
     assert r.status == "ok" or r.status.startswith("stopped early")
     assert list(r.history.columns) == ["epoch", "train_loss", "val_loss", "grad_norm", "lr", "seconds"]
     assert list(r.metrics.index) == ["rnn", "persistence", "linear_ar"]  # season None: no seasonal naive
-    assert list(r.metrics.columns) == [f"{s}_{m}" for s in ("val", "test")
-                                       for m in ("mae", "rmse", "mase", "r2")]
+    assert list(r.metrics.columns[:8]) == [f"{s}_{m}" for s in ("val", "test")
+                                           for m in ("mae", "rmse", "mase", "r2")]
+    # then the test part's prediction intervals per coverage level (0.8, 0.95 by default)
+    assert list(r.metrics.columns[8:]) == [f"test_{m}_{lv}" for lv in ("80", "95")
+                                           for m in ("coverage", "width", "interval_score")]
     assert np.isfinite(r.metrics.to_numpy()).all()
     # A well-trained network forecasts a noisy sine one step ahead far better than the
     # series' own spread (noise sd 0.1 against sd 0.71): common practice, no source.
@@ -123,7 +126,7 @@ def test_save_load_roundtrip(tmp_path, sine, trained):
     path = tmp_path / "model"
     trained.save(path)
     doc = json.loads((path / "config.json").read_text())
-    assert doc["format"] == "rnnkit-fit" and doc["version"] == 1
+    assert doc["format"] == "rnnkit-fit" and doc["version"] == 2  # 2: horizon = leads 1..H
     with np.load(path / "weights.npz", allow_pickle=False) as z:
         assert sorted(z.files) == ["U", "V", "W", "b", "c"]
     loaded = load_fit(path)

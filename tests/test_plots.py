@@ -68,6 +68,19 @@ def _metrics():
                         index=["rnn", "persistence", "seasonal_naive", "linear_ar"])
 
 
+def _future():
+    """Known values and a forecast frame laid out as FitResult.forecast() returns it."""
+    past = pd.Series(np.linspace(10, 20, 30), index=pd.date_range("2024-01-01", periods=30, freq="D"),
+                     name="load")
+    idx = pd.date_range("2024-01-31", periods=5, freq="D")
+    point = np.full(5, 20.0)
+    spread = np.arange(1.0, 6.0)
+    fut = pd.DataFrame({"lead": np.arange(1, 6), "forecast": point, "lower_80": point - spread,
+                        "upper_80": point + spread, "lower_95": point - 2 * spread,
+                        "upper_95": point + 2 * spread}, index=idx)
+    return past, fut
+
+
 ALPHAS = np.linspace(-1, 1, 11)
 BETAS = np.linspace(-0.5, 0.5, 7)
 SURFACE = 0.2 + np.add.outer(BETAS ** 2, ALPHAS ** 2) * 3  # (B, A)
@@ -88,6 +101,7 @@ CALLS = {
     "metrics_bar": lambda ax=None: plots.metrics_bar(_metrics(), column="test_rmse", ax=ax),
     "backtest_folds": lambda ax=None: plots.backtest_folds(
         pd.DataFrame({"rnn": [1.0, 2.0], "persistence": [1.5, 1.2]}, index=[1, 2]), column="test_rmse", ax=ax),
+    "fan_chart": lambda ax=None: plots.fan_chart(_future()[0], _future()[1], ax=ax),
 }
 
 

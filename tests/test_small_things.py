@@ -57,7 +57,8 @@ def test_short_repr_of_diagnostics():
 def test_small_val_and_test_parts_warn():
     # fewer than 30 windows: common practice, no source
     nile = sm.datasets.nile.load_pandas().data[["volume"]].astype(float)
-    with pytest.warns(SmallPartWarning, match="the val part has only 11 windows"):
+    # 100 rows split 0.7/0.15/0.15: every one of the 15 val rows is a target (windows reach back)
+    with pytest.warns(SmallPartWarning, match="the val part has only 15 windows"):
         p = prepare(nile, Config(target="volume", window=4, season=None))
     assert any("fewer than 30" in n for n in p.notes)
     long = pd.DataFrame({"y": np.sin(np.arange(2000) / 7.0)})

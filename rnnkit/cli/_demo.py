@@ -9,6 +9,10 @@ from ..data import datasets
 
 # Full demo: 2 windows x 2 hidden sizes x 2 activations on two years of hourly
 # load, 12 epochs each. Quick demo (tests): a few weeks, 2 runs, 2 epochs.
+# The network forecasts the next day (24 leads). The last day of the data plays the
+# future: its temperatures and door openings are known (a weather forecast, a shift
+# plan), its load is not; the report shows the forecast for it with its intervals.
+_AHEAD = 24
 _SPACE = {"window": [24, 48], "hidden": [16, 32], "activation": ["tanh", "relu"]}
 _QUICK_SPACE = {"window": [12, 24]}
 
@@ -18,7 +22,7 @@ def demo_setup(quick: bool = False):
     years = 45 / 365 if quick else 2.0
     df = datasets.cold_storage_load(years=years)
     base = Config(target="load_kw", features=("outdoor_temp_c", "doors_open"),
-                  missing="interpolate", window=24, horizon=1, hidden=16,
+                  missing="interpolate", window=24, horizon=_AHEAD, hidden=16,
                   epochs=2 if quick else 12, batch_size=64, lr=5e-3, patience=4)
     return df, base, (_QUICK_SPACE if quick else _SPACE)
 
@@ -31,16 +35,24 @@ def run_demo(out, *, workers: int = 1, progress: bool = True, quick: bool = Fals
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    df, base, space = demo_setup(quick)
+    whole, base, space = demo_setup(quick)
+    df = whole.iloc[:-_AHEAD]  # the known past
     result = sweep(df, base, space, seeds=1, workers=workers, store=str(out / "runs.db"),
                    progress=progress)
     write_text(out / "results.csv", result.table.to_csv(index=False))
     result.export(out / "best-config.json")
     best = fit(df, result.best(), progress=False)
-    write_report(out / "report.html", best, sweep_result=result,
+    ahead = whole.copy()
+    ahead.iloc[-_AHEAD:, ahead.columns.get_loc("load_kw")] = float("nan")  # inputs known, load not
+    future = best.forecast(df=ahead)
+    write_text(out / "forecast.csv", future.to_csv(index=True))
+    write_report(out / "report.html", best, sweep_result=result, future=future,
                  title="rnnkit demo: hourly load of an invented cold-storage warehouse")
     print(result.summary().to_string(float_format=lambda v: f"{v:.4g}"))
     print()
     print(best.metrics.to_string(float_format=lambda v: f"{v:.4g}"))
-    print(f"\nwrote {out / 'results.csv'}, {out / 'best-config.json'} and {out / 'report.html'}")
+    print()
+    print(future.to_string(float_format=lambda v: f"{v:.4g}"))
+    print(f"\nwrote {out / 'results.csv'}, {out / 'best-config.json'}, {out / 'forecast.csv'} and "
+          f"{out / 'report.html'}")
     return result, best

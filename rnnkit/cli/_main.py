@@ -5,6 +5,7 @@
     rnnkit sweep SPACE.json --data FILE [--store runs.db] [--workers N] [--folds K] [--out DIR]
     rnnkit backtest CONFIG.json --data FILE [--folds K] [--test-size N] [--window N] [--out DIR]
     rnnkit check-gradients CONFIG.json --data FILE
+    rnnkit forecast MODEL_DIR --data FILE [--steps N] --out FILE.csv
 
 Bad input ends with exit status 2 and one line on stderr that says what to fix.
 """
@@ -221,12 +222,35 @@ def gradient_check_on_data(df, config, *, n_windows: int = 4):
     x, y, mask = prep.windows("train")
     k = min(n_windows, len(x))
     key = jax.random.PRNGKey(config.seed)
-    params = init_params(key, prep.n_inputs, config.hidden, prep.n_outputs, scheme=config.init,
+    params = init_params(key, prep.n_inputs, config.hidden, prep.net_outputs, scheme=config.init,
                          recurrent_scale=config.recurrent_scale, cell=config.cell)
+    if prep.leads > 1:  # the network's outputs are the leads, side by side
+        y = y.reshape(len(y), -1)
     kw = dict(activation=config.activation, task=config.task, mode=config.mode, cell=config.cell)
     if mask is not None:
         kw["mask"] = mask[:k]
     return check_gradients(params, x[:k], y[:k], **kw)
+
+
+def cmd_forecast(args) -> int:
+    from ..data._atomic import write_text
+    from ..fitting._fit import load_fit
+
+    out = Path(args.out)
+    if out.suffix.lower() != ".csv":
+        raise UsageError(f"--out {args.out}: the forecast is written as CSV; give a .csv file name")
+    if out.is_dir():
+        raise UsageError(f"--out {args.out} is a folder; give a .csv file name")
+    if args.steps is not None and args.steps < 1:
+        raise UsageError(f"--steps {args.steps}: give a whole number >= 1 (default: the horizon)")
+    result = load_fit(args.model)
+    df = read_data(args.data, args.index_col, keep=result.config.time_column)
+    table = result.forecast(steps=args.steps, df=df)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    write_text(out, table.to_csv(index=True))
+    print(table.to_string(float_format=lambda v: f"{v:.4g}"))
+    print(f"wrote {out} ({len(table)} rows)")
+    return 0
 
 
 def cmd_check_gradients(args) -> int:
@@ -306,6 +330,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="output folder (default backtest-out)")
     common(p)
     p.set_defaults(func=cmd_backtest)
+    p = sub.add_parser("forecast", help="forecast past the end of a data file with a saved model, "
+                       "with prediction intervals")
+    p.add_argument("model", metavar="MODEL_DIR", help="a fit folder (written by `rnnkit fit` or "
+                   "FitResult.save)")
+    p.add_argument("--steps", type=int, default=None, metavar="N",
+                   help="future steps (default: the model's horizon, or the rows of future inputs)")
+    p.add_argument("--out", required=True, metavar="FILE.csv", help="where to write the forecast")
+    common(p)
+    p.set_defaults(func=cmd_forecast)
 
     p = sub.add_parser("check-gradients", help="compare JAX gradients with hand-written BPTT "
                        "and finite differences on windows of your data")

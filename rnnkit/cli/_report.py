@@ -29,6 +29,8 @@ _CAPTIONS = {
     "metrics": "Validation score of the network beside the baselines.",
     "forecast": "Actual against predicted values on the original time index.",
     "forecast_recent": "The last steps of the test range, up close.",
+    "future": "The forecast past the end of the data with its split conformal prediction intervals "
+              "(from the validation errors; they assume the future behaves like the validation period).",
     "gradient_flow": "Mean norm of dL/dh_k over the window: steep decay means the network "
                      "cannot learn from early steps (vanishing gradients).",
     "spectrum": "Singular values of the recurrent matrix V (gated cells: its candidate "
@@ -92,11 +94,22 @@ def report_figures(result, sweep_result=None) -> dict:
     return figs
 
 
-def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report") -> Path:
-    """Write one HTML file with the fit's tables and figures (and the sweep's), atomically."""
+def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report",
+                 future: "pd.DataFrame | None" = None) -> Path:
+    """Write one HTML file with the fit's tables and figures (and the sweep's), atomically.
+
+    ``future``: a ``result.forecast(...)`` frame to show (a fit whose network reads only the
+    target gets one from its own data anyway).
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     figs = report_figures(result, sweep_result)
+    if future is not None and result.prepared is not None:
+        from ..fitting._fit import future_figure
+
+        figs["future"] = future_figure(result, future)
+    elif "future" in figs and result.prepared is not None:
+        future = result.forecast()
     parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>{html.escape(title)}"
              f"</title><style>{_CSS}</style></head><body><h1>{html.escape(title)}</h1>",
              f"<p>Written {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC. "
@@ -105,6 +118,16 @@ def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report
              "recent data, watch for changes in the process that produced the data, and compare "
              "with the baselines below before relying on it.</p>",
              "<h2>Scores</h2>", _table(result.metrics)]
+    if len(result.metrics_by_lead) and result.metrics_by_lead.index.get_level_values("lead").max() > 1:
+        parts += ["<h2>Scores lead by lead (network)</h2>", _table(result.metrics_by_lead.loc[["rnn"]])]
+    if future is not None:
+        parts += ["<h2>Forecast</h2>",
+                  "<p class='note'>The intervals come from the errors on the validation part (split "
+                  "conformal): they hold only as far as the future resembles that period. A change of "
+                  "regime (a new price, a broken sensor, a pandemic) voids them. Check backtests before "
+                  "acting on a forecast.</p>", _table(future)]
+    if result.notes:
+        parts += ["<h2>Notes</h2><ul>"] + [f"<li>{html.escape(n)}</li>" for n in result.notes] + ["</ul>"]
     if sweep_result is not None:
         parts += ["<h2>Sweep, ranked</h2>", _table(sweep_result.summary().head(30), index=False)]
     parts.append("<h2>Figures</h2>")
@@ -133,6 +156,10 @@ def write_backtest_report(path, result, *, title: str = "rnnkit backtest") -> Pa
              f"<p>Paired tests over the forecasts of every fold ({html.escape(str(cmp['test'].iloc[0]))}"
              f", two-sided):</p><ul>{verdicts}</ul>" if len(cmp) else "<p>No baseline to compare.</p>",
              _table(cmp),
+             ("<h3>Lead by lead</h3><p>Each lead alone (Diebold-Mariano's h = the lead); the "
+              "verdicts above test the squared error averaged over the leads of each origin (h = "
+              "the horizon).</p>" + _table(result.comparison_by_lead))
+             if len(result.comparison_by_lead) else "",
              "<h2>Scores over folds</h2>", _table(result.summary()),
              "<h2>Folds</h2>", _table(result.folds, index=False),
              "<h2>Scores per fold</h2>", _table(result.metrics),

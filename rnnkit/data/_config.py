@@ -28,6 +28,7 @@ WATCHES = ("loss", "metric")
 MAX_STEPS = 100_000  # window, horizon, season (steps)
 MAX_GAP = 100_000_000  # gap (rows)
 MAX_EPOCHS = 100_000  # epochs, patience
+TRANSFORMS = ("none", "log", "diff", "log-diff")
 
 
 @dataclass(frozen=True)
@@ -50,13 +51,15 @@ class Config:
     task: str = "regression"  # "regression" (squared error) or "classification" (softmax)
     mode: str = "many-to-one"  # "many-to-one": last step only; "many-to-many": every step
     window: Union[int, str] = 24  # input steps per example, or "full" for whole sequences
-    horizon: int = 1  # how many steps ahead of the last input the target lies
+    horizon: int = 1  # regression many-to-one: forecast leads 1..horizon at once; else the one lead of the target
     split: Tuple[float, float, float] = (0.7, 0.15, 0.15)  # train/val/test fractions, in time order
-    gap: int = 0  # extra rows dropped between parts, beyond the window+horizon-1 they never share
+    gap: int = 0  # rows after the end of a part that are never targets of the next (still inputs)
     scale: str = "standard"  # "standard", "minmax" or "none"; fit on the training part only
     missing: str = "error"  # NaN policy: "error", "ffill" or "interpolate"
     season: Optional[Union[int, str]] = "auto"  # season length in steps; "auto" from the time step; None: no season
     short_sequences: str = "error"  # a sequence shorter than window+horizon: "error", or "drop" it (counted)
+    transform: str = "none"  # target learnt as "none", "log", "diff" or "log-diff"; results in original units
+    coverage: Tuple[float, ...] = (0.8, 0.95)  # levels of the split conformal prediction intervals
     # --- model ---
     hidden: int = 32  # hidden units H
     activation: str = "tanh"  # state nonlinearity: tanh, sigmoid, relu, linear
@@ -89,6 +92,8 @@ class Config:
                 object.__setattr__(self, name, tuple(v))
         if isinstance(self.split, (list, tuple)):
             object.__setattr__(self, "split", tuple(float(s) for s in self.split))
+        if isinstance(self.coverage, list):
+            object.__setattr__(self, "coverage", tuple(self.coverage))
         _check(self)
 
     # --- conversions ---
@@ -211,6 +216,7 @@ def _check(c: Config) -> None:
                                                         or not 1 <= c.season <= MAX_STEPS):
         raise ValueError(f"`season` (={c.season!r}) must be a whole number of steps from 1 to "
                          f"{MAX_STEPS}, 'auto' or None")
+    _check_forecasting(c)
 
     if not _is_int(c.hidden) or not 1 <= c.hidden <= 4096:
         raise ValueError(f"`hidden` (={c.hidden!r}) must be a whole number from 1 to 4096")
@@ -230,6 +236,30 @@ def _check(c: Config) -> None:
                          "or None")
     if not _is_int(c.seed) or not 0 <= c.seed < 2**31:
         raise ValueError(f"`seed` (={c.seed!r}) must be a whole number from 0 to 2**31-1")
+
+
+def _check_forecasting(c: Config) -> None:
+    """`transform` and `coverage`."""
+    if c.transform not in TRANSFORMS:
+        raise _bad("transform", c.transform, "one of " + ", ".join(repr(x) for x in TRANSFORMS))
+    if c.transform != "none" and c.task != "regression":
+        raise ValueError(f"`transform` (={c.transform!r}) changes a numeric target; classification "
+                         "labels take `transform`='none'")
+    if c.transform in ("diff", "log-diff"):
+        if c.horizon < 1:
+            raise ValueError(f"`transform`={c.transform!r} adds predicted differences to the last known "
+                             "value, which `horizon`=0 does not have; set `horizon` >= 1")
+        if c.mode == "many-to-many" and c.horizon != 1:
+            raise ValueError(f"`transform`={c.transform!r} with `mode`='many-to-many' needs `horizon`=1 "
+                             f"(got {c.horizon}): each step's level is the previous level plus one "
+                             "predicted difference")
+    if (not isinstance(c.coverage, tuple) or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and 0 < v < 1
+            for v in c.coverage)):
+        raise ValueError(f"`coverage` (={c.coverage!r}) must be a list of levels between 0 and 1, "
+                         "for example [0.8, 0.95] (an empty list: no intervals)")
+    if len(set(round(float(v), 6) for v in c.coverage)) != len(c.coverage):
+        raise ValueError(f"`coverage` (={list(c.coverage)!r}) names a level twice")
 
 
 def _positive_float(c, name, v, upper):

@@ -26,6 +26,7 @@ from ._config import Config
 from ._prepare import _boundary, _group_order
 from ._errors import DataError
 from ._split import window_starts
+from ._transform import DIFFS, forward
 from ._windows import Prepared, Scaler
 
 NEW = "new"  # the `split` value of rows predicted on a frame other than the training one
@@ -65,17 +66,18 @@ def frame_actuals(df: pd.DataFrame, prepared: Prepared) -> np.ndarray:
         return df[prepared.target_names[0]].to_numpy(dtype=object)[rows]
     raw = np.stack([df[t].to_numpy(dtype=np.float64, na_value=np.nan)[rows]
                     for t in prepared.target_names], axis=1)  # (R, O)
-    filled = prepared.scaler.inverse_targets(prepared.targets)  # (R, O)
-    return np.where(np.isnan(raw), filled, raw)
+    return np.where(np.isnan(raw), prepared.levels, raw)
 
 
-def prepare_like(df: pd.DataFrame, spec: DataSpec):
+def prepare_like(df: pd.DataFrame, spec: DataSpec, need_windows: bool = True):
     """Prepare a frame with a fit's scaler and class mapping: every window, one split.
 
     Args:
       df: a frame with the columns the fit used (the target may be missing: its
         actual values are then NaN). Never modified.
       spec: the fit's DataSpec.
+      need_windows: False lets a frame shorter than window + horizon through (a forecast
+        needs only the last window of known rows).
 
     Returns:
       (prepared, actual): a Prepared whose "train" starts hold EVERY window of
@@ -127,8 +129,22 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
         t = spec.target_names[0]
         actual = (df[t].to_numpy(dtype=object)[rows] if t in df.columns
                   else np.full(len(rows), np.nan, dtype=object))
+    if regression and cfg.transform != "none":
+        # the target learnt as the fit learnt it; its first row per sequence has no difference
+        z = {t: forward(actual[:, j], t, cfg.transform, seq_starts, row_label, time_label)
+             for j, t in enumerate(spec.target_names)}
+        for t in spec.target_names:
+            if t in values:
+                values[t] = z[t]
+        if cfg.transform in DIFFS:
+            first = np.zeros(len(rows), dtype=bool)
+            first[seq_starts] = True
+            keep &= ~first
+    else:
+        z = None
     if not keep.all():
         rows, actual = rows[keep], actual[keep]
+        z = None if z is None else {t: v[keep] for t, v in z.items()}
         values = {k: v[keep] for k, v in values.items()}
         gcode = None if gcode is None else gcode[keep]
         labels = None if labels is None else labels[keep]
@@ -145,13 +161,14 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
         span = int(cfg.window) + spec.horizon
         starts = window_starts(np.zeros(n, np.int8), boundary, span)["train"]
         lengths, window = None, int(cfg.window)
-        if len(starts) == 0:
+        if len(starts) == 0 and need_windows:
             raise DataError(f"the frame has no complete window: a window needs window + horizon = {span} "
                             f"consecutive rows of one sequence, and the frame has {n} usable rows"
                             + ("" if gcode is None else " split over sequences")
                             + "; pass a longer frame")
     if regression:
-        targets = np.stack([spec.scaler.transform(actual[:, j], [t]) if t in spec.scaler.columns
+        targets = np.stack([spec.scaler.transform(actual[:, j] if z is None else z[t], [t])
+                            if t in spec.scaler.columns
                             else np.full(n, np.nan) for j, t in enumerate(spec.target_names)],
                            axis=1).astype(cfg.dtype)  # (R, O)
     else:
@@ -170,7 +187,7 @@ def prepare_like(df: pd.DataFrame, spec: DataSpec):
                         list(spec.input_names), list(spec.target_names), spec.classes, spec.scaler,
                         cfg.season, pd.DataFrame({"reason": [], "rows": []}), rows,
                         {"rows_in_frame": len(df), "rows_used": n, "rows_train": n, "rows_val": 0,
-                         "rows_test": 0}, ())
+                         "rows_test": 0}, (), actual if regression else None)
     return prepared, actual
 
 
@@ -179,18 +196,21 @@ def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
 
 
-def per_row(rows: np.ndarray, values: np.ndarray):
+def per_row(rows: np.ndarray, values: np.ndarray, first: bool = False):
     """One value per target row; many-to-many keeps the step with the most history.
 
     Args:
       rows: (N,) or (N, T) target row of every prediction.
       values: (N, ...) or (N, T, ...) the predictions.
+      first: keep the FIRST position of a row instead (leads: lead 1 saw the most history).
 
     Returns:
       (rows (M,), values (M, ...)), rows unique.
     """
     if rows.ndim == 1:
         return rows, values
+    if first:
+        rows, values = rows[:, ::-1], values[:, ::-1]
     N, T = rows.shape
     pos = np.broadcast_to(np.arange(T), (N, T)).ravel()  # step of each prediction in its window
     r = rows.ravel()
@@ -241,7 +261,7 @@ def prediction_frame(prepared: Prepared, spec: DataSpec, actual: np.ndarray, par
     pred = np.full((R, width), np.nan)
     split = np.full(R, None, dtype=object)
     for label, (rows, values) in parts.items():
-        r, v = per_row(np.asarray(rows), np.asarray(values, np.float64))
+        r, v = per_row(np.asarray(rows), np.asarray(values, np.float64), first=prepared.leads > 1)
         pred[r] = v
         split[r] = label
     cols = _regression_columns(actual, pred, spec.target_names) if regression else \

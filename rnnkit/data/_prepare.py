@@ -20,6 +20,7 @@ from ._checks import (check_finite, check_frame, check_order, fill_missing, fmt_
 from ._config import Config
 from ._errors import DataError, SmallPartWarning
 from ._split import PART_NAMES, assign_parts, check_scorable, check_windows, target_mask, window_starts
+from ._transform import DIFFS, forward
 from ._windows import Prepared, fit_scaler
 
 
@@ -94,11 +95,23 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         if (codes < 0).any():
             keep = codes >= 0 if keep is None else keep & (codes >= 0)
     split_codes = None if config.split_column is None else _split_codes(df, config.split_column, take, row_label)
+    levels = np.stack([values[t] for t in targets], axis=1) if regression else None  # (R, O) original units
+    if regression and config.transform != "none":
+        for t in targets:
+            values[t] = forward(values[t], t, config.transform, seq_starts, row_label, time_label)
 
     # 4. drop what cannot be used: leading gaps that no fill reaches, short sequences
     dropped: List[tuple] = []
     if keep is not None and not keep.all():
         dropped.append(("leading missing values that could not be filled", int((~keep).sum())))
+    if regression and config.transform in DIFFS:
+        first = np.zeros(len(rows), dtype=bool)
+        for t in targets:
+            first |= np.isnan(values[t]) & (True if keep is None else keep)
+        if first.any():
+            dropped.append((f"first row of a sequence: `transform`={config.transform!r} has no "
+                            "difference there", int(first.sum())))
+            keep = ~first if keep is None else keep & ~first
     span = 1 if full else config.window + config.horizon
     if gcode is not None and not full:
         keep = _short_sequences(gcode, gids, span, config, keep, dropped)
@@ -112,13 +125,17 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         ticks = None if ticks is None else ticks[keep]
         codes = None if codes is None else codes[keep]
         split_codes = None if split_codes is None else split_codes[keep]
+        levels = None if levels is None else levels[keep]
         boundary = None if gcode is None else _boundary(gcode)
         row_label = lambda i: plain_label(df.index[rows[i]])  # noqa: E731
     n = len(rows)
 
     # 5. parts and window starts
+    multi = regression and config.mode == "many-to-one" and not full and config.horizon > 1
+    reach = 0 if full else (config.horizon if config.mode == "many-to-many" else
+                            config.window - 1 + (1 if multi else config.horizon))
     part, notes, gap_rows = assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span,
-                                         labels=codes)
+                                         labels=codes, targets=span - reach)
     for p, k in gap_rows.items():
         dropped.append((f"`gap` rows before {PART_NAMES[p]}", k))
     if full:
@@ -128,7 +145,7 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
         lengths = {name: ln[part[lo] == p] for p, name in enumerate(PART_NAMES)}
         window = int(ln.max())
     else:
-        starts = window_starts(part, boundary, span)
+        starts = window_starts(part, boundary, span, reach=reach)
         lengths = {name: None for name in PART_NAMES}
         window = config.window
     horizon = 0 if full else config.horizon
@@ -156,8 +173,8 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     # 7. scaler fit on training rows only, then scale every row
     train = part == 0
     if regression:
-        for t in targets:
-            _check_magnitude(values[t], t)
+        for i, t in enumerate(targets):  # scores are in the original units, whatever `transform`
+            _check_magnitude(levels[:, i], t)
     scaled = input_names + ([t for t in targets if t not in input_names] if regression else [])
     scaler = fit_scaler(config.scale, scaled, [values[c][train] for c in scaled], input_names,
                         targets if regression else [])
@@ -183,14 +200,17 @@ def prepare(df: pd.DataFrame, config: Optional[Config] = None) -> Prepared:
     if config.features is None and feats:
         notes += (f"input columns chosen automatically (every other numeric column): {list(feats)}; "
                   "set `features` to choose (a year or counter column is rarely a useful input)",)
+    if config.transform != "none":
+        notes += (f"the network learns the target as `transform`={config.transform!r}; every forecast "
+                  "and score is back in the original units",)
     resolved = config.replace(target=targets[0] if len(targets) == 1 else tuple(targets),
                               features=tuple(feats), season=season)
-    for a in (inputs, targets_arr, index, rows):
+    for a in (inputs, targets_arr, index, rows) + (() if levels is None else (levels,)):
         a.flags.writeable = False
     return Prepared(resolved, inputs, targets_arr, index, groups, window, horizon, starts, lengths,
                     list(input_names), list(targets), classes, scaler, season,
                     pd.DataFrame(dropped, columns=["reason", "rows"]).astype({"rows": np.int64}),
-                    rows, counts, tuple(notes))
+                    rows, counts, tuple(notes), levels)
 
 
 def _group_order(df, group_column):

@@ -1,9 +1,14 @@
 """Split rows into train / val / test parts and find the windows inside each part.
 
-Every row gets a part code (0 train, 1 val, 2 test, -1 unused). A window, its
-inputs and its targets, lies wholly inside one run of rows that share a part
-and a sequence, so no window crosses a split or a sequence. All of this is
-vectorised: the work is O(rows), not O(rows x window).
+Every row gets a part code (0 train, 1 val, 2 test, -1 unused). A training
+window, its inputs and its targets, lies wholly inside one run of training
+rows of one sequence. A validation or test window has every target inside
+one run of its part, but may take its inputs from the rows before that run
+(training rows, `gap` rows, other parts) of the same sequence, as a forecast
+made at that time would: so every val/test row can be a target, and a short
+series keeps its parts whole. Nothing is fitted on those rows. No window
+crosses a sequence. All of this is vectorised: the work is O(rows), not
+O(rows x window).
 """
 from __future__ import annotations
 
@@ -101,14 +106,34 @@ def drop_gap(part: np.ndarray, boundary: Optional[np.ndarray], gap: int) -> Tupl
     return part, dropped
 
 
-def window_starts(part: np.ndarray, boundary: Optional[np.ndarray], span: int) -> dict:
-    """First row of every window of ``span`` rows lying inside one run; split name -> (N,) int64."""
+def window_starts(part: np.ndarray, boundary: Optional[np.ndarray], span: int,
+                  reach: Optional[int] = None) -> dict:
+    """First row of every window, per split name: (N,) int64.
+
+    Args:
+        part, boundary: as in `run_bounds`.
+        span: rows from a window's first input to its last target (window + horizon).
+        reach: rows from a window's first input to its FIRST target. None: every
+            window lies inside one run (inputs and targets). Else val and test
+            windows only need their targets inside one run of their part; their
+            inputs may come from any earlier rows of the same sequence.
+    """
     lo, hi, rp = run_bounds(part, boundary)
     out = {}
+    seq_lo = None
+    if reach is not None:
+        first = np.zeros(len(part), dtype=bool) if boundary is None else np.asarray(boundary, bool).copy()
+        first[0] = True
+        seq_lo = np.maximum.accumulate(np.where(first, np.arange(len(part)), 0))  # (R,) first row of its sequence
     for p, name in enumerate(PART_NAMES):
         sel = rp == p
-        n = np.maximum(hi[sel] - lo[sel] - span + 1, 0)
-        out[name] = _ranges(lo[sel], n)
+        if reach is None or p == 0:
+            n = np.maximum(hi[sel] - lo[sel] - span + 1, 0)
+            out[name] = _ranges(lo[sel], n)
+        else:  # targets in [lo, hi); the first input may lie up to `reach` rows before lo
+            begin = np.maximum(lo[sel] - reach, seq_lo[lo[sel]]) if len(lo[sel]) else lo[sel]
+            n = np.maximum(hi[sel] - span + 1 - begin, 0)
+            out[name] = _ranges(begin, n)
     return out
 
 
@@ -121,9 +146,16 @@ def _ranges(lo: np.ndarray, n: np.ndarray) -> np.ndarray:
     return (np.repeat(lo - offsets, n) + np.arange(total, dtype=np.int64)).astype(np.int64)
 
 
-def min_rows(span: int, split: Sequence[float], gap: int) -> int:
-    """Fewest rows for which every part with a fraction > 0 holds one window of ``span`` rows."""
-    need = [span, span + gap, span + gap if split[2] > 0 else 0]
+def min_rows(span: int, split: Sequence[float], gap: int, targets: Optional[int] = None,
+             train: Optional[int] = None) -> int:
+    """Fewest rows for which every part with a fraction > 0 holds one window.
+
+    Training needs ``train`` rows (default ``span``: one window); val and test
+    need ``targets`` rows (the rows one window's targets cover; default
+    ``span``) plus ``gap``.
+    """
+    t = span if targets is None else targets
+    need = [span if train is None else train, t + gap, t + gap if split[2] > 0 else 0]
     n = max(int(np.ceil(need[p] / split[p])) if split[p] > 0 else 0 for p in range(3))
     n = max(n - 3, 1)
     while True:
@@ -156,13 +188,18 @@ def stratified_pick(labels: np.ndarray, k: int, seed: int) -> np.ndarray:
     return np.sort(np.concatenate(picked)).astype(np.int64)
 
 
-def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span, labels=None):
+def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span, labels=None,
+                 targets=None):
     """Part code of every row: chronological rows, whole sequences, or the split column.
 
     Args:
         n: rows R. gcode: (R,) int64 sequence code or None. boundary: (R,) bool or None.
         ticks: (R,) time or None. split_codes: (R,) int8 from the split column or None.
         span: rows one window needs (window + horizon; 1 for window="full").
+        targets: rows the targets of one window cover (val and test windows reach back
+            for their inputs, so they need only these); None: span.
+        labels: (R,) int class codes (classification) or None: validation carved from a
+            labelled training part takes whole sequences per class in proportion.
     Returns:
         part (R,) int8, notes (tuple of sentences), gap rows dropped per part {1: k, 2: k}.
     """
@@ -173,13 +210,19 @@ def assign_parts(config, n, gcode, gids, boundary, ticks, split_codes, span, lab
     if gcode is None or single:
         if split_codes is None:
             sizes = counts_by_fraction(n, f)
-            need = (span, span + config.gap, span + config.gap)
+            t = span if targets is None else targets
+            # regression: the stated minimum gives two training windows (the linear AR baseline
+            # needs them); a training part of exactly one window is refused by check_scorable
+            two = config.task == "regression" and span > 1
+            need = (span, t + config.gap, t + config.gap)
             if any(f[p] > 0 and sizes[p] < need[p] for p in range(3)):
+                what = (f"two windows, window + horizon + 1 = {span + 1} rows" if two
+                        else f"window + horizon = {span} rows")
                 raise DataError(
-                    f"too few rows: {n} rows split {list(f)} give {list(sizes)} rows to train/val/test, but each "
-                    f"part needs window + horizon = {span} rows (val and test also `gap` = {config.gap}); "
-                    f"the minimum is {min_rows(span, f, config.gap)} rows: add rows or lower "
-                    "`window`/`horizon`/`gap`")
+                    f"too few rows: {n} rows split {list(f)} give {list(sizes)} rows to train/val/test, but "
+                    f"training needs {what} and val and test {t} target row(s) each plus `gap` = "
+                    f"{config.gap}; the minimum is {min_rows(span, f, config.gap, t, span + two)} rows: "
+                    "add rows or lower `window`/`horizon`/`gap`")
             part = chronological_parts(n, f)
         else:
             part = split_codes.copy()
@@ -245,8 +288,9 @@ def check_windows(starts: dict, config, n: int, span: int, split_codes) -> None:
     for name in wanted:
         if len(starts[name]) == 0:
             raise DataError(f"the {name} part has no complete window: a window needs window + horizon = {span} "
-                            f"consecutive rows of one part and one sequence (val and test lose `gap` = "
-                            f"{config.gap} rows first); lower `window`/`horizon`/`gap` or give {name} more rows")
+                            f"consecutive rows of one sequence, its targets all in the {name} part (a training "
+                            f"window's inputs too; val and test lose `gap` = {config.gap} rows first); lower "
+                            f"`window`/`horizon`/`gap` or give {name} more rows")
 
 
 def check_scorable(starts: dict, lengths: dict, span: int, boundary, n: int, config) -> None:

@@ -3,7 +3,11 @@
 A Prepared holds every used row once (``inputs (R, I)``, ``targets``) and, per
 split, the first row of each window (``starts``). A window covers rows
 ``s .. s+T-1``; its target lies ``horizon`` rows after each input step
-(many-to-many) or after the last one (many-to-one). With ``window="full"``
+(many-to-many) or after the last one (many-to-one). Regression many-to-one
+forecasts every lead 1..horizon at once (``leads``: the multi-output direct
+strategy, Ben Taieb et al. 2012): its targets are rows ``s+T .. s+T-1+H``.
+Validation and test windows may start before their part (see _split.py).
+With ``window="full"``
 each sequence is one example: ``lengths`` gives its real length and the target
 is the sequence's last row. The training loop gathers windows by index inside
 jit; ``windows(split)`` is for people and tests.
@@ -18,6 +22,7 @@ import pandas as pd
 from numpy.lib.stride_tricks import sliding_window_view
 
 from ._config import Config
+from ._transform import DIFFS, inverse
 
 SPLITS = ("train", "val", "test")
 
@@ -141,6 +146,59 @@ class Prepared:
     rows: np.ndarray  # (R,) int64 position of each row in the caller's frame
     counts: dict  # rows_in_frame, rows_used, rows per split
     notes: tuple = ()  # sentences for summary(): choices made on the user's behalf
+    levels: Optional[np.ndarray] = None  # regression (R, O) float64 target in original units (untransformed)
+
+    @property
+    def leads(self) -> int:
+        """L: leads forecast at once (regression many-to-one: horizon; else 1)."""
+        c = self.config
+        if self.full or c.task != "regression" or c.mode != "many-to-one" or self.horizon < 1:
+            return 1
+        return int(self.horizon)
+
+    @property
+    def net_outputs(self) -> int:
+        """Output units of the network: leads x target columns, or classes K."""
+        return self.n_outputs * self.leads
+
+    @property
+    def reach(self) -> int:
+        """Rows from a window's first input to its first target."""
+        if self.full:
+            return 0
+        if self.config.mode == "many-to-many":
+            return self.horizon
+        return self.window - 1 + (1 if self.leads > 1 else self.horizon)
+
+    def lead_targets(self) -> np.ndarray:
+        """Training targets by the row of the window's last input: (R, L*O), lead-major.
+
+        Row r holds the scaled targets of rows r+1 .. r+L (zeros past the end, never
+        read); with one lead, the targets themselves (the trainer adds the horizon).
+        """
+        if self.leads == 1:
+            return self.targets
+        R, O = self.targets.shape
+        out = np.zeros((R, self.leads * O), dtype=self.targets.dtype)
+        for k in range(1, self.leads + 1):
+            out[:R - k, (k - 1) * O:k * O] = self.targets[k:]
+        return out
+
+    def original(self, out, rows) -> np.ndarray:
+        """Scaled network (or linear AR) outputs back to original units.
+
+        Args:
+            out: shaped like the targets of ``rows``: (N, O), (N, L, O) or (N, T, O).
+            rows: their target rows (``target_rows``).
+        """
+        z = self.scaler.inverse_targets(out)
+        t = self.config.transform
+        if t not in DIFFS:
+            return inverse(z, t)
+        rows = np.asarray(rows, dtype=np.int64)
+        if self.leads > 1:
+            return inverse(z, t, self.levels[rows[:, :1] - 1], lead_axis=1)
+        return inverse(z, t, self.levels[rows - 1])
 
     @property
     def n_inputs(self) -> int:
@@ -168,6 +226,8 @@ class Prepared:
         if self.full:
             return s + self.lengths[split] - 1  # (N,)
         if self.config.mode == "many-to-one":
+            if self.leads > 1:  # leads 1..L
+                return s[:, None] + self.window + np.arange(self.leads, dtype=np.int64)[None, :]  # (N, L)
             return s + (self.window - 1 + self.horizon)  # (N,)
         return s[:, None] + np.arange(self.window, dtype=np.int64)[None, :] + self.horizon  # (N, T)
 
@@ -192,7 +252,8 @@ class Prepared:
             x: (N, T, I) inputs, a strided view of ``inputs`` when the split's
                starts are consecutive (one series), else gathered; zero-padded
                for window="full".
-            y: regression (N, O) or (N, T, O); classification (N,) or (N, T).
+            y: regression (N, O), (N, L, O) with several leads, or (N, T, O);
+               classification (N,) or (N, T).
             mask: (N, T) bool for window="full" (False = padding), else None.
         """
         s = self._split(split)
@@ -207,7 +268,7 @@ class Prepared:
         x_all = sliding_window_view(self.inputs, T, axis=0).transpose(0, 2, 1)  # (R-T+1, T, I) view
         x = _take(x_all, s)
         if self.config.mode == "many-to-one":
-            return x, self.targets[s + (T - 1 + h)], None
+            return x, self.targets[self.target_rows(split)], None
         y_all = sliding_window_view(self.targets, T, axis=0)  # (R-T+1, [O,] T) view
         if y_all.ndim == 3:
             y_all = y_all.transpose(0, 2, 1)  # (R-T+1, T, O)
@@ -222,6 +283,10 @@ class Prepared:
             items.append(("sequences", c["sequences"], f"group column {self.config.group_column!r}"))
         for sp in SPLITS:
             detail = f"window {self.window}, horizon {self.horizon}"
+            if self.leads > 1:
+                detail += f" (leads 1..{self.leads})"
+            if sp != "train" and not self.full:
+                detail += "; inputs may come from rows before the part, targets lie inside it"
             if self.groups is not None:
                 detail += f", {c['sequences_' + sp]} sequences"
             items.append((f"{sp} rows", c["rows_" + sp], ""))

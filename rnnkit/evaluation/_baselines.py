@@ -9,9 +9,9 @@ nearest-neighbour baseline on the whole given training set.
 ``baseline_predictions(prepared, split)`` returns, per baseline name, the
 predictions for exactly the targets of that split (``Prepared.target_rows``):
 
-- regression, in ORIGINAL units, shaped like the targets ((N, O) or (N, T, O)):
-  ``persistence``, ``seasonal_naive`` (only when the season is known) and
-  ``linear_ar``;
+- regression, in ORIGINAL units, shaped like the targets ((N, O), (N, L, O)
+  with several leads, or (N, T, O)): ``persistence``, ``seasonal_naive``
+  (only when the season is known) and ``linear_ar``;
 - classification, as probabilities ((N, C) or (N, T, C)): ``majority`` and
   ``last_label``, or for whole sequences (window="full") ``majority`` and
   ``nearest_neighbour``. (With whole sequences the label belongs to the
@@ -24,6 +24,12 @@ Choices, in one place:
   the training class frequencies.
 - linear_ar (many-to-many) predicts step t from the window's inputs at steps
   0..t, like the network, with one ridge model per step.
+- Several leads (Ben Taieb et al. 2012, the direct strategy): persistence
+  repeats the last input row's value at every lead; seasonal naive takes the
+  value one season before each lead's time; linear_ar is one ridge model per
+  lead on the same window. The naive forecasts read the original values;
+  linear_ar learns the target as the network does (scaled, transformed) and
+  is mapped back the same way.
 - With window="full", linear_ar sees each sequence right-aligned (zeros in
   front), so its last input step is always the step before the target;
   nearest_neighbour compares sequences zero-padded at the end to the longest.
@@ -84,9 +90,9 @@ class _Gather:
 
 
 class Fitted(NamedTuple):
-    """What the baselines learned from the training part (scaled units)."""
+    """What the baselines learned from the parts they were fitted on (`parts`)."""
 
-    mean: Optional[np.ndarray]  # (O,) training target mean (regression) or None
+    mean: Optional[np.ndarray]  # (O,) training target mean, original units (regression) or None
     freq: Optional[np.ndarray]  # (C,) training class frequencies (classification) or None
     linear: Optional[core.LinearAR]  # regression only
     segments: np.ndarray  # (R,) sequence number of every row
@@ -133,7 +139,7 @@ def prepared_mase_scale(prepared) -> np.ndarray:
     rows = training_rows(prepared)
     seg = core.segments(prepared.groups, len(prepared.targets))[rows]
     run = np.concatenate([[0], np.cumsum((np.diff(rows) != 1) | (np.diff(seg) != 0))])
-    y = prepared.scaler.inverse_targets(prepared.targets[rows])  # (K, O)
+    y = prepared.levels[rows]  # (K, O) original units
     m = prepared.season or 1
     if m > 1 and np.bincount(run).max() <= m:
         m = 1
@@ -147,6 +153,8 @@ def _inputs(prepared, split) -> _Gather:
 
 def _linear_targets(prepared, parts):
     p = prepared
+    if p.leads > 1:  # (N, L*O), lead-major
+        return np.concatenate([p.lead_targets()[p.starts[q] + p.window - 1] for q in parts])
     if p.full or p.config.mode == "many-to-one":
         return np.concatenate([p.targets[p.target_rows(q)] for q in parts])  # (N, O)
     return _Gather(p.targets, _starts(p, parts), p.window, offset=p.horizon)  # (N, T, O)
@@ -168,7 +176,7 @@ def fit_baselines(prepared, *, lam: float = core.RIDGE, parts=("train",)) -> Fit
     parts = tuple(q for q in parts if len(p.starts[q]) > 0) or ("train",)
     seg = core.segments(p.groups, len(p.targets))
     if p.classes is None:
-        mean = p.targets[training_rows(p, parts)].mean(axis=0, dtype=np.float64)  # (O,)
+        mean = p.levels[training_rows(p, parts)].mean(axis=0, dtype=np.float64)  # (O,)
         inputs = _Gather(p.inputs, _starts(p, parts), p.window, 0, _lengths(p, parts), right=p.full)
         with _one_blas_thread():
             linear = core.fit_linear_ar(inputs, _linear_targets(p, parts), lam=lam)
@@ -194,15 +202,21 @@ def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) 
         raise ValueError(f"`split` (={split!r}) must be one of {SPLITS}")
     p = prepared
     f = fit_baselines(p, parts=parts_before(split)) if fitted is None else fitted
-    rows = p.target_rows(split)  # (N,) or (N, T)
+    rows = p.target_rows(split)  # (N,), (N, L) or (N, T)
     h = p.horizon
     if p.classes is None:
-        inv = p.scaler.inverse_targets
-        out = {"persistence": inv(core.persistence(p.targets, rows, h, f.segments, f.mean))}
+        if p.leads > 1:  # lead k: naive forecasts from the last input row, k rows before
+            by_lead = lambda fn, *a: np.stack(  # noqa: E731
+                [fn(p.levels, rows[:, k], k + 1, *a) for k in range(p.leads)], axis=1)
+        else:
+            by_lead = lambda fn, *a: fn(p.levels, rows, h, *a)  # noqa: E731
+        out = {"persistence": by_lead(core.persistence, f.segments, f.mean)}
         if p.season is not None:
-            out["seasonal_naive"] = inv(core.seasonal_naive(p.targets, rows, h, p.season,
-                                                            f.segments, f.mean))
-        out["linear_ar"] = inv(core.predict_linear_ar(f.linear, _inputs(p, split)))
+            out["seasonal_naive"] = by_lead(core.seasonal_naive, p.season, f.segments, f.mean)
+        z = core.predict_linear_ar(f.linear, _inputs(p, split))
+        if p.leads > 1:
+            z = z.reshape(len(z), p.leads, -1)  # (N, L, O)
+        out["linear_ar"] = p.original(z, rows)
         return out
     n_classes = len(p.classes)
     out = {"majority": np.broadcast_to(f.freq, rows.shape + (n_classes,)).copy()}
@@ -219,8 +233,8 @@ def baseline_predictions(prepared, split: str, fitted: Optional[Fitted] = None) 
 
 def truth(prepared, split: str) -> np.ndarray:
     """The targets of one split: regression in original units, classification as codes."""
-    y = prepared.targets[prepared.target_rows(split)]
-    return y if prepared.classes is not None else prepared.scaler.inverse_targets(y)
+    rows = prepared.target_rows(split)
+    return prepared.targets[rows] if prepared.classes is not None else prepared.levels[rows]
 
 
 def score_baselines(prepared, splits=("val", "test"), fitted: Optional[Fitted] = None) -> pd.DataFrame:

@@ -17,13 +17,26 @@ compiles does not grow with the number of folds.
 The network's errors are paired with every baseline's on the same targets:
 Diebold-Mariano with the HLN correction on squared errors (regression),
 McNemar on correct / incorrect (classification), over all folds together.
+
+Several leads (regression, many-to-one, ``horizon`` H > 1: one network
+forecasts leads 1..H from each origin). Validation and test windows read
+their inputs from the rows before their part, so a fold's test part is
+exactly its forecast block, and every origin in the block whose H targets
+all lie in the block is forecast. The errors table has one row per (fold,
+model, target time, lead) and an ``origin_row`` column (the row of the window's
+last input). ``comparison`` tests the loss a forecaster of the whole path
+pays: the squared error averaged over the H leads of one origin, one loss
+per origin, with Diebold-Mariano's h = H (origins less than H steps apart
+share target rows, so their loss differences are correlated up to lag
+H - 1; Diebold & Mariano 1995, Harvey, Leybourne & Newbold 1997).
+``comparison_by_lead`` tests every lead k alone with h = k.
 """
 from __future__ import annotations
 
 import concurrent.futures as cf
 import time
 from dataclasses import dataclass
-from typing import List, Optional, Sequence, Union
+from typing import List, Optional, Sequence, Tuple, Union
 
 import jax
 import numpy as np
@@ -68,7 +81,7 @@ def _whole(v, name, low=1):
 
 
 def series_folds(n: int, folds: int, *, test_size: int, lookback: int, val_fraction: float,
-                 window: Union[str, int] = "expanding") -> List[Fold]:
+                 window: Union[str, int] = "expanding", cover: int = 1) -> List[Fold]:
     """Folds of one series of ``n`` rows with origins moving forward to its end.
 
     Fold k (1..K) forecasts rows [n - (K-k+1) B, n - (K-k) B), B = test_size.
@@ -76,11 +89,16 @@ def series_folds(n: int, folds: int, *, test_size: int, lookback: int, val_fract
     first test window; 0 when test windows read inputs from before their part).
     Before that lie its training rows: every row from the start ("expanding")
     or the last ``window`` rows (a rolling window), the last ``val_fraction``
-    of them for validation (at least ``lookback`` + 1 rows, what one window needs,
-    while one training row is left).
+    of them for validation (at least ``lookback`` + ``cover`` rows, what one
+    window's targets need, while one training row is left). ``cover``: rows the
+    targets of one window span (the horizon H with leads 1..H; else 1).
     """
     n, folds, test_size = _whole(n, "n"), _whole(folds, "folds"), _whole(test_size, "test_size")
     lookback = _whole(lookback, "lookback", 0)
+    cover = _whole(cover, "cover")
+    if test_size < cover:
+        raise DataError(f"`test_size` (={test_size}) is shorter than the {cover} rows one forecast covers "
+                        f"(leads 1..{cover}); give `test_size` >= {cover}")
     if window != "expanding":
         _whole(window, "window", 2)
     if not 0.0 < val_fraction < 1.0:
@@ -97,8 +115,8 @@ def series_folds(n: int, folds: int, *, test_size: int, lookback: int, val_fract
         test_lo = origin - lookback
         lo = 0 if window == "expanding" else max(0, test_lo - int(window))
         m = test_lo - lo
-        # at least the rows one validation window needs (as many as a test part's lead-in, plus one)
-        v = min(max(lookback + 1, int(round(m * val_fraction))), m - 1)
+        # at least the rows one validation window's targets need (as a test part's lead-in, plus cover)
+        v = min(max(lookback + cover, int(round(m * val_fraction))), m - 1)
         part = np.full(n, None, dtype=object)
         part[lo:test_lo - v] = "train"
         part[test_lo - v:test_lo] = "val"
@@ -181,27 +199,32 @@ def fold_frame(df: pd.DataFrame, fold: Fold, column: str) -> pd.DataFrame:
     return df.iloc[np.flatnonzero(used)].assign(**{column: fold.part[used]})
 
 
-def measure_lookback(df: pd.DataFrame, config: Config, column: str) -> int:
-    """Rows of a test part that come before its first forecast target.
+def measure_lookback(df: pd.DataFrame, config: Config, column: str) -> Tuple[int, int]:
+    """Rows of a test part that come before its first forecast target, and the rows the
+    targets of one window cover.
 
     Measured on the frame itself (the last third labelled test): the first
-    test target's row minus the test part's first row. It is window + horizon
-    - 1 (plus ``gap``) when a test window must lie inside its part, and less
-    when test windows may read inputs from before their part.
+    test target's row minus the test part's first row. It is ``gap`` when
+    test windows read their inputs from before their part (as they do), and
+    window + horizon - 1 + ``gap`` should the frame not prepare. The targets
+    of one window cover H rows with H leads, 1 row with one lead, the
+    window's rows for many-to-many.
     """
     n = len(df)
     part = np.full(n, "train", dtype=object)
     part[n - max(n // 3, 1):] = "test"
     probe = df.assign(**{column: part})
+    fallback = int(config.window) + int(config.horizon) - 1 + int(config.gap), 1
     try:
         p = prepare(probe, config)
     except DataError:
-        return int(config.window) + int(config.horizon) - 1 + int(config.gap)
+        return fallback
     rows = p.target_rows("test")
-    if len(rows) == 0:
-        return int(config.window) + int(config.horizon) - 1 + int(config.gap)
+    if rows.size == 0:
+        return fallback
     first_target = int(p.rows[int(np.min(rows))])
-    return max(first_target - (n - max(n // 3, 1)), 0)
+    cover = int(p.window) + int(p.horizon) - int(p.reach)
+    return max(first_target - (n - max(n // 3, 1)), 0), max(cover, 1)
 
 
 def _val_fraction(config: Config) -> float:
@@ -264,9 +287,9 @@ def plan_folds(df: pd.DataFrame, config: Config, folds: int, *, test_size: Optio
     n = len(df)
     if test_size is None:
         test_size = max((n // 2) // folds, 1)  # the last half of the series, in `folds` blocks
-    lookback = 0 if config.window == "full" else measure_lookback(df, cfg, column)
+    lookback, cover = (0, 1) if config.window == "full" else measure_lookback(df, cfg, column)
     out = series_folds(n, folds, test_size=test_size, lookback=lookback,
-                       val_fraction=_val_fraction(config), window=window)
+                       val_fraction=_val_fraction(config), window=window, cover=cover)
     scheme = {"folds": folds, "scheme": "rolling origin", "window": window, "test_size": int(test_size)}
     return out, cfg, column, scheme
 
@@ -283,12 +306,14 @@ def fold_errors(result, fold: Fold, offset: np.ndarray) -> pd.DataFrame:
       offset: (r,) the caller-frame position of each row of the fold's frame.
 
     Returns:
-      DataFrame fold, model, row (caller-frame position), time, [sequence], [step], lead,
-      [target], and regression: actual, predicted, error (actual - predicted);
-      classification: actual, predicted (labels), correct.
+      DataFrame fold, model, row (caller-frame position of the target), time, [sequence],
+      [step], lead (1..H with several leads, else the horizon), origin_row (caller-frame
+      position of the window's last input row), [target], and regression: actual,
+      predicted, error (actual - predicted); classification: actual, predicted (labels),
+      correct. The baselines are those of the fit's test scores (fitted on train + val).
     """
     p = result.prepared
-    rows = p.target_rows("test")  # (N,) or (N, T)
+    rows = p.target_rows("test")  # (N,), (N, L) or (N, T)
     if rows.size == 0:
         return pd.DataFrame()
     outputs = {"rnn": result._split_outputs("test")}
@@ -296,9 +321,16 @@ def fold_errors(result, fold: Fold, offset: np.ndarray) -> pd.DataFrame:
     where = {"row": offset[p.rows[rows]], "time": p.index[rows]}
     if p.groups is not None:
         where["sequence"] = p.groups[rows]
-    if rows.ndim == 2:
-        where["step"] = np.broadcast_to(np.arange(rows.shape[1]), rows.shape)
-    where["lead"] = np.full(rows.shape, p.horizon, dtype=np.int64)
+    if p.leads > 1:  # (N, L): leads 1..L of one origin
+        where["lead"] = np.broadcast_to(np.arange(1, p.leads + 1, dtype=np.int64), rows.shape)
+    else:
+        if rows.ndim == 2:
+            where["step"] = np.broadcast_to(np.arange(rows.shape[1]), rows.shape)
+        where["lead"] = np.full(rows.shape, p.horizon, dtype=np.int64)
+    s = p.starts["test"]
+    last_input = s + (p.lengths["test"] - 1 if p.full else p.window - 1)  # (N,)
+    where["origin_row"] = np.broadcast_to(
+        offset[p.rows[last_input]].reshape((-1,) + (1,) * (rows.ndim - 1)), rows.shape)
     frames = []
     if p.classes is None:
         actual = result._actual[rows]  # (..., O)
@@ -326,13 +358,15 @@ def fold_errors(result, fold: Fold, offset: np.ndarray) -> pd.DataFrame:
     return pd.concat(frames, ignore_index=True)
 
 
-def _per_target_loss(errors: pd.DataFrame, model: str, regression: bool) -> pd.Series:
-    """One loss per forecast (fold, window, step), in fold then window order: the mean squared
-    error over the outputs (regression) or 1 - correct (classification)."""
+def _per_target_loss(errors: pd.DataFrame, model: str, regression: bool,
+                     lead: Optional[int] = None) -> pd.Series:
+    """One loss per forecast origin (fold, window), in fold then window order: the mean squared
+    error over the outputs, the steps (many-to-many) and the leads (regression) or 1 - correct
+    (classification). ``lead``: only that lead's errors."""
     e = errors[errors["model"] == model]
-    if "step" in e.columns:  # many-to-many: one loss per window (its first input row)
-        e = e.assign(row=e["row"] - e["step"] - e["lead"])
-    keys = ["fold", "row"]
+    if lead is not None:
+        e = e[e["lead"] == lead]
+    keys = ["fold", "origin_row"]
     if regression:
         loss = (e["error"] ** 2).groupby([e[k] for k in keys], sort=False).mean()
     else:
@@ -340,19 +374,26 @@ def _per_target_loss(errors: pd.DataFrame, model: str, regression: bool) -> pd.S
     return loss
 
 
-def compare(errors: pd.DataFrame, regression: bool, dm_horizon: int, level: float = LEVEL) -> pd.DataFrame:
-    """The network against each baseline, over the targets of every fold.
+def compare(errors: pd.DataFrame, regression: bool, dm_horizon: int, level: float = LEVEL,
+            lead: Optional[int] = None) -> pd.DataFrame:
+    """The network against each baseline, over the forecast origins of every fold.
+
+    Args:
+      errors: ``fold_errors`` of every fold. dm_horizon: Diebold-Mariano's h.
+      lead: test only this lead's errors (None: the loss averaged over every lead).
 
     Returns:
-      DataFrame indexed by baseline: loss, n, mean_difference (network minus baseline:
-      mean squared error, or error rate), test, statistic, pvalue, verdict.
+      DataFrame indexed by baseline: loss, n (origins), mean_difference (network minus
+      baseline: mean squared error, or error rate), test, statistic, pvalue, verdict.
     """
     models = [m for m in dict.fromkeys(errors["model"]) if m != "rnn"]
-    net = _per_target_loss(errors, "rnn", regression)
+    net = _per_target_loss(errors, "rnn", regression, lead)
+    several = errors["lead"].nunique() > 1 and lead is None
     rows = {}
     for base in models:
-        other = _per_target_loss(errors, base, regression).reindex(net.index)
-        row = {"loss": "squared error" if regression else "error rate", "n": int(len(net))}
+        other = _per_target_loss(errors, base, regression, lead).reindex(net.index)
+        loss = ("squared error" + (" (mean over leads)" if several else "")) if regression else "error rate"
+        row = {"loss": loss, "n": int(len(net))}
         bad = ~np.isfinite(net.to_numpy()) | ~np.isfinite(other.to_numpy())
         if bad.any():
             folds = sorted({int(k[0]) for k, b in zip(net.index, bad) if b})
@@ -370,6 +411,20 @@ def compare(errors: pd.DataFrame, regression: bool, dm_horizon: int, level: floa
     return pd.DataFrame.from_dict(rows, orient="index", columns=cols).rename_axis("baseline")
 
 
+def compare_by_lead(errors: pd.DataFrame, level: float = LEVEL) -> pd.DataFrame:
+    """``compare`` lead by lead (regression with several leads): lead k tested with h = k.
+
+    Returns:
+      DataFrame indexed by (baseline, lead), the columns of ``compare``; empty with one lead.
+    """
+    leads = sorted(int(k) for k in errors["lead"].unique()) if len(errors) else []
+    if len(leads) < 2:
+        return pd.DataFrame()
+    parts = {k: compare(errors, True, k, level, lead=k) for k in leads}
+    return pd.concat(parts, names=["lead"]).reorder_levels(["baseline", "lead"]).sort_index(
+        level="baseline", sort_remaining=False, kind="stable")
+
+
 class BacktestResult:
     """The folds of a backtest, their scores and errors, and the significance of the differences.
 
@@ -378,17 +433,23 @@ class BacktestResult:
         forecast target), train_rows, val_rows, test_targets, status, epochs, compiles, seconds.
       metrics: DataFrame indexed by (fold, model), the columns of FitResult.metrics.
       mean, std: DataFrames indexed by model: mean and sample spread (ddof=1) over folds.
-      errors: DataFrame, one row per (fold, model, target): see ``fold_errors``.
+      errors: DataFrame, one row per (fold, model, target, lead): see ``fold_errors``.
       comparison: DataFrame indexed by baseline: mean loss difference (network minus
         baseline), the test (Diebold-Mariano/HLN or McNemar), statistic, p-value, verdict.
+        With several leads the loss is the squared error averaged over the leads of one
+        origin, tested with h = horizon.
+      comparison_by_lead: DataFrame indexed by (baseline, lead): the same, lead k alone
+        with h = k (regression with several leads; else empty).
       scheme: dict, how the folds were made (folds, scheme, window, test_size or seed).
       fits: the FitResult of every fold (empty when the folds ran on an executor).
       compiles: programs compiled over all folds (this process; with an executor the folds'
         training programs); seconds: wall time.
     """
 
-    def __init__(self, *, folds, metrics, errors, comparison, scheme, fits, compiles, seconds, config):
+    def __init__(self, *, folds, metrics, errors, comparison, scheme, fits, compiles, seconds, config,
+                 comparison_by_lead=None):
         self.folds, self.metrics, self.errors = folds, metrics, errors
+        self.comparison_by_lead = pd.DataFrame() if comparison_by_lead is None else comparison_by_lead
         self.comparison, self.scheme, self.fits = comparison, scheme, list(fits)
         self.compiles, self.seconds, self.config = int(compiles), float(seconds), config
         g = metrics.groupby(level="model", sort=False)
@@ -503,7 +564,8 @@ def backtest(df: pd.DataFrame, config=None, folds: int = 5, *, window: Union[str
     errors = pd.concat([o["errors"] for o in outcomes], ignore_index=True)
     regression = cfg.task == "regression"
     comparison = compare(errors, regression, dm_horizon(prepared[0]), level)
-    return BacktestResult(folds=pd.DataFrame([o["row"] for o in outcomes]),
+    by_lead = compare_by_lead(errors, level) if regression else None
+    return BacktestResult(folds=pd.DataFrame([o["row"] for o in outcomes]), comparison_by_lead=by_lead,
                           metrics=pd.concat([o["metrics"] for o in outcomes]), errors=errors,
                           comparison=comparison, scheme=scheme, fits=fits, compiles=compiles,
                           seconds=time.perf_counter() - t0,
@@ -541,8 +603,9 @@ def _say(outcome, total):
 
 def dm_horizon(prepared) -> int:
     """The h of the Diebold-Mariano test: how far apart two forecasts must be to share no
-    error term. Many-to-one: the horizon; many-to-many (losses per window): window + horizon - 1;
-    whole sequences (independent): 1."""
+    error term. Many-to-one: the horizon (with leads 1..H, the loss averaged over the leads
+    of one origin shares target rows with the H - 1 origins before it); many-to-many (losses
+    per window): window + horizon - 1; whole sequences (independent): 1."""
     if prepared.full:
         return 1
     if prepared.config.mode == "many-to-many":

@@ -14,7 +14,9 @@ from typing import Optional
 import numpy as np
 import pandas as pd
 
-from ..evaluation._baselines import baseline_predictions, fit_baselines, parts_before, prepared_mase_scale
+from ..evaluation._baselines import (baseline_predictions, fit_baselines, parts_before, prepared_mase_scale,
+                                     training_rows)
+from ..evaluation._intervals import by_lead, half_widths, interval_scores
 from ..data._config import Config
 from ..data._errors import DataError
 from ..data._prepare import prepare
@@ -49,18 +51,70 @@ def softmax(logits: np.ndarray) -> np.ndarray:
 
 
 def network_predictions(params: dict, prepared, split: str, shapes=None) -> np.ndarray:
-    """The network on every window of a split: regression (N, [T,] O) in original units,
-    classification (N, [T,] K) probabilities; float64."""
+    """The network on every window of a split: regression (N, O), (N, L, O) with several
+    leads, or (N, T, O), in original units (transform undone); classification (N, [T,] K)
+    probabilities; float64."""
     out = evaluate(params, prepared, split, shapes=shapes)
     if prepared.classes is not None:
         return softmax(out)
-    return prepared.scaler.inverse_targets(out)
+    if prepared.leads > 1:
+        out = out.reshape(len(out), prepared.leads, -1)  # (N, L, O), lead-major outputs
+    return prepared.original(out, prepared.target_rows(split))
 
 
 def _truth(prepared, actual, split):
     rows = prepared.target_rows(split)
     return prepared.targets[rows] if prepared.classes is not None else actual[rows]
 
+
+def extrapolation_note(prepared) -> tuple:
+    """A note when the test targets lie far outside the training range (the network extrapolates).
+
+    "Far": more than a quarter of the test targets beyond the training minimum or
+    maximum by over a tenth of the training range (common practice, no source).
+    """
+    if prepared.classes is not None or len(prepared.starts["test"]) == 0 \
+            or prepared.config.transform in ("diff", "log-diff"):  # differences need no new levels
+        return ()
+    train = prepared.levels[training_rows(prepared)]  # (K, O)
+    test = prepared.levels[np.unique(prepared.target_rows("test"))]  # (M, O)
+    lo, hi = train.min(axis=0), train.max(axis=0)
+    room = 0.1 * np.maximum(hi - lo, 1e-12)
+    out = ()
+    for j, name in enumerate(prepared.target_names):
+        above = float(np.mean(test[:, j] > hi[j] + room[j]))
+        below = float(np.mean(test[:, j] < lo[j] - room[j]))
+        if max(above, below) > 0.25:
+            where = (f"{above:.0%} above the training maximum {hi[j]:.4g}" if above >= below
+                     else f"{below:.0%} below the training minimum {lo[j]:.4g}")
+            fix = "`transform`='diff' or 'log-diff' (differences stay in range when the level moves)"
+            out += (f"the test values of {name!r} lie far outside the training range ({where}): the "
+                    f"network must extrapolate, which it does poorly; try {fix}",)
+    return out
+
+
+def interval_widths(prepared, outputs: dict, val_pred: dict) -> tuple:
+    """Conformal half widths per model from the validation residuals.
+
+    Returns:
+      ({model: (C, L, O) half widths}, notes): C = len(config.coverage).
+    """
+    levels = prepared.config.coverage
+    if prepared.classes is not None or not levels or len(prepared.starts["val"]) == 0:
+        return {}, ()
+    y = by_lead(prepared.levels[prepared.target_rows("val")], prepared.leads)
+    q, notes = {}, ()
+    for model, pred in val_pred.items():
+        pred = by_lead(pred, prepared.leads)
+        if not np.all(np.isfinite(pred)):
+            continue
+        q[model], capped = half_widths(np.abs(y - pred), levels)
+        if model == "rnn" and capped.any():
+            short = [f"{v:g}" for v, c in zip(levels, capped) if c]
+            notes += (f"only {len(y)} validation windows: too few for a conformal interval at level(s) "
+                      f"{', '.join(short)}, which use the largest validation error and cover less than "
+                      "they say; give the validation part more rows",)
+    return q, notes
 
 def _scores(y, pred, prepared, scale, model, split, names):
     """Metric dict for one model and split; NaN throughout when the model's output is not finite."""
@@ -81,29 +135,70 @@ def score(prepared, actual: np.ndarray, outputs: dict):
 
     Returns:
       (metrics DataFrame indexed by model, columns "<split>_<metric>" for val and
-      test (NaN for a split without windows); confusion dict split -> DataFrame).
+      test (NaN for a split without windows), then for regression the test part's
+      interval scores "test_coverage_<level>", "test_width_<level>",
+      "test_interval_score_<level>"; confusion dict split -> DataFrame).
+      ``score_all`` also gives the scores per lead and the interval widths.
     """
+    metrics, matrices, _, _, _ = score_all(prepared, actual, outputs)
+    return metrics, matrices
+
+
+def score_all(prepared, actual: np.ndarray, outputs: dict):
+    """``score`` plus (metrics_by_lead, {model: half widths (C, L, O)}, notes)."""
     regression = prepared.classes is None
     names = REGRESSION_METRICS if regression else CLASSIFICATION_METRICS
     scale = prepared_mase_scale(prepared) if regression else None
     # baselines fitted on every part before the scored one (test: train + val)
     fitted = {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
     table = {"rnn": {}}
+    lead_table = {}
     matrices = {}
+    found_by_split = {}
     for split in SCORED:
         if len(prepared.starts[split]) == 0:
             continue
         y = _truth(prepared, actual, split)
         found = {"rnn": outputs[split]}
         found.update(baseline_predictions(prepared, split, fitted[split]))
+        found_by_split[split] = (y, found)
         for model, pred in found.items():
             m = _scores(y, pred, prepared, scale, model, split, names)
             table.setdefault(model, {}).update({f"{split}_{k}": v for k, v in m.items()})
+            if regression:  # lead by lead (one lead: the same numbers)
+                yl, pl = by_lead(y, prepared.leads), by_lead(pred, prepared.leads)
+                for k in range(yl.shape[1]):
+                    m = _scores(yl[:, k], pl[:, k], prepared, scale, model, split, names)
+                    lead_table.setdefault((model, k + 1), {}).update(
+                        {f"{split}_{n}": v for n, v in m.items()})
         if not regression and np.all(np.isfinite(outputs[split])):
             matrices[split] = confusion(y, np.argmax(outputs[split], axis=-1), prepared.classes)
     columns = [f"{s}_{m}" for s in SCORED for m in names]
-    metrics = pd.DataFrame.from_dict(table, orient="index").reindex(columns=columns)
-    return metrics.astype(np.float64).rename_axis("model"), matrices
+    q, notes = ({}, ())
+    if regression and "val" in found_by_split:
+        # half widths from validation residuals: the network and the baselines fitted on train
+        # only (fitted["val"]); the test intervals centre on the test predictions (baselines
+        # fitted on train + val), as a forecaster refitting before the test period would
+        q, notes = interval_widths(prepared, outputs, found_by_split["val"][1])
+    extra = []
+    if q and "test" in found_by_split:
+        y, found = found_by_split["test"]
+        levels = prepared.config.coverage
+        yl = by_lead(y, prepared.leads)
+        for model, widths in q.items():
+            pl = by_lead(found[model], prepared.leads)
+            whole = interval_scores(yl, pl, widths, levels)
+            table[model].update({f"test_{k}": float(v) for k, v in whole.items()})
+            for k, v in interval_scores(yl, pl, widths, levels, axis=(0, 2)).items():
+                for lead, value in enumerate(v, start=1):
+                    lead_table[(model, lead)][f"test_{k}"] = float(value)
+        extra = [f"test_{k}" for k in whole]
+    metrics = pd.DataFrame.from_dict(table, orient="index").reindex(columns=columns + extra)
+    by_lead_frame = pd.DataFrame.from_dict(lead_table, orient="index")
+    if len(by_lead_frame):
+        by_lead_frame = by_lead_frame.reindex(columns=columns + extra).astype(np.float64)
+        by_lead_frame.index = pd.MultiIndex.from_tuples(by_lead_frame.index, names=["model", "lead"])
+    return metrics.astype(np.float64).rename_axis("model"), matrices, by_lead_frame, q, notes
 
 
 FAR_WORSE = 2.0  # network val RMSE this many times the best baseline's gets a note (common practice, no source)
@@ -146,22 +241,32 @@ class FitResult:
       history: DataFrame, one row per epoch: epoch, train_loss, val_loss,
         grad_norm (before clipping), lr, seconds.
       metrics: DataFrame indexed by model ("rnn" and the baselines), columns
-        "<split>_<metric>" for val and test, in the target's original units.
+        "<split>_<metric>" for val and test, in the target's original units, every
+        lead pooled; regression adds the test part's interval scores per coverage
+        level: test_coverage_80, test_width_80, test_interval_score_80, ...
+      metrics_by_lead: DataFrame indexed by (model, lead), the same columns lead by lead
+        (regression; empty for classification).
+      interval_widths: (C, L, O) conformal half widths of the network's intervals, one
+        per coverage level, lead and target (None without validation windows).
+      notes: sentences to read beside the scores: the data preparation's own notes
+        (``prepared.notes``), too few validation windows for an interval, a test part
+        far outside the training range, a network far worse than the best baseline,
+        an undefined MASE.
       confusion: dict split -> DataFrame (classification; empty for regression).
       diagnostics: Diagnostics of the trained network (measured on first use).
       prepared: the Prepared it was trained on (None when loaded without data).
       best_epoch: the epoch whose parameters these are (0: the initial ones).
       compiles, seconds: training programs compiled, wall time of training.
-      notes: sentences to read beside the scores (a network far worse than the
-        best baseline, an undefined MASE); the data's own notes are in
-        ``prepared.notes``.
     """
 
     def __init__(self, *, params, spec: DataSpec, status, history, metrics, confusion=None,
                  prepared=None, actual=None, best_epoch=0, compiles=0, seconds=0.0,
-                 diagnostics=None, outputs=None, labels=None, notes=()):
+                 diagnostics=None, outputs=None, labels=None, metrics_by_lead=None,
+                 interval_widths=None, notes=()):
         self.params = params
-        self.notes = tuple(notes)  # sentences about the scores (fit_notes) to read beside them
+        self.metrics_by_lead = pd.DataFrame() if metrics_by_lead is None else metrics_by_lead
+        self.interval_widths = None if interval_widths is None else np.asarray(interval_widths, np.float64)
+        self.notes = tuple(notes)
         self.spec = spec
         self.config = spec.config
         self.status = status
@@ -245,6 +350,46 @@ class FitResult:
         return prediction_frame(p, self.spec, actual, parts,
                                 zoned_labels(df, p.rows, self.config.time_column))
 
+    def forecast(self, steps: Optional[int] = None, df: Optional[pd.DataFrame] = None) -> pd.DataFrame:
+        """Forecasts past the end of the data, with conformal prediction intervals.
+
+        Args:
+          steps: how many future rows; None: the horizon (or, when the network reads
+            other input columns, as many rows as the frame gives their future values).
+            Beyond the horizon the forecast goes on in blocks of the horizon, each
+            block reading the forecasts before it as the target's past.
+          df: None for the training frame; or a frame with the fit's columns (a loaded
+            fit needs one). Rows at its end with an EMPTY target are future rows: when
+            the network reads inputs besides the target, they must carry those inputs'
+            future values (a missing one is an error naming the column and row).
+
+        Returns:
+          DataFrame indexed by the future time labels (the step read from the frame's
+          times: hourly, daily, monthly, quarterly, yearly..., or integers; future rows
+          keep their own labels), one row per step and sequence: the group column (with
+          several sequences), "lead" (1..steps), "forecast", then "lower_<level>" and
+          "upper_<level>" per coverage level (several targets: "<target>_forecast", ...),
+          and "calibrated" (False beyond the horizon, where the bounds are widened by
+          sqrt(lead / horizon) instead of measured). Original units.
+
+        The intervals are split conformal intervals from the validation errors: they hold
+        as far as the future behaves like the validation period.
+
+        Example:
+          >>> result.forecast(12)[["forecast", "lower_80", "upper_80"]]
+        """
+        from ._forecast import forecast
+
+        return forecast(self, steps, df)
+
+    def can_forecast(self) -> bool:
+        """True when forecast() can run from the training frame alone (the network reads only the
+        target's own past, so no future inputs are needed)."""
+        c = self.config
+        return (c.task == "regression" and c.mode == "many-to-one" and c.window != "full"
+                and self.spec.horizon >= 1 and self.prepared is not None
+                and list(self.spec.input_names) == list(self.spec.target_names))
+
     def save(self, path) -> None:
         """Write this result to a folder (atomically); read it back with ``rnnkit.load_fit``."""
         save_fit(self, path)
@@ -260,6 +405,8 @@ class FitResult:
         if self.prepared is not None and self.config.window != "full":
             pred = self.predict()
             figs["forecast"] = plots.forecast(pred) if regression else plots.class_forecast(pred)
+            if self.can_forecast():
+                figs["future"] = future_figure(self, self.forecast(), pred)
         d = self.diagnostics
         bound = 0.25 if d.activation == "sigmoid" else 1.0  # max |phi'|
         # the Pascanu et al. bound holds for the Elman recurrence only
@@ -275,6 +422,27 @@ class FitResult:
         if len(d.val_states) >= 2:
             figs["hidden_path"] = plots.hidden_path(d.val_states)
         return figs
+
+
+def future_figure(result, future: pd.DataFrame, pred: Optional[pd.DataFrame] = None, recent: int = 120):
+    """plots.fan_chart of the last sequence's recent known values and its forecast.
+
+    Args:
+      result: the FitResult. future: its ``forecast()`` frame. pred: its ``predict()`` frame
+        (made when None; needs the training frame).
+    """
+    from .. import plots
+
+    pred = result.predict() if pred is None else pred
+    group = result.config.group_column
+    if group is not None and group in future.columns:
+        last = future[group].iloc[-1]
+        future = future[future[group] == last]
+        key = group if group in pred.columns else "sequence"
+        pred = pred[pred[key] == last]
+    cols = [c for c in pred.columns if c == "actual" or c.endswith("_actual")]
+    name = result.spec.target_names[0] if cols[0] == "actual" else cols[0][:-len("_actual")]
+    return plots.fan_chart(pred[cols[0]].rename(name), future, recent=recent)
 
 
 def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_epoch=None,
@@ -306,14 +474,15 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
     actual = frame_actuals(df, prepared)
     outputs = {s: network_predictions(outcome.params, prepared, s, shapes)
                for s in SCORED if len(prepared.starts[s])}
-    metrics, matrices = score(prepared, actual, outputs)
+    metrics, matrices, by_lead_frame, widths, notes = score_all(prepared, actual, outputs)
+    notes = prepared.notes + notes + extrapolation_note(prepared) + fit_notes(metrics, prepared)
     return FitResult(params=outcome.params, spec=spec_of(prepared, df.index.name),
+                     metrics_by_lead=by_lead_frame, interval_widths=widths.get("rnn"), notes=notes,
                      status=outcome.status, history=outcome.history, metrics=metrics,
                      confusion=matrices, prepared=prepared, actual=actual,
                      best_epoch=outcome.best_epoch, compiles=outcome.compiles,
                      seconds=outcome.seconds, outputs=outputs,
-                     labels=zoned_labels(df, prepared.rows, cfg.time_column),
-                     notes=fit_notes(metrics, prepared))
+                     labels=zoned_labels(df, prepared.rows, cfg.time_column))
 
 
 def load_fit(path, df=None):
@@ -345,7 +514,8 @@ def load_fit(path, df=None):
     # With the data attached, diagnostics are measured again (window_states(i) for any i).
     diagnostics = None if prepared is not None else parts["read_diagnostics"]()
     return FitResult(params=parts["params"], spec=spec, status=parts["status"], history=parts["history"],
-                     metrics=parts["metrics"], confusion=parts["confusion"], prepared=prepared,
+                     metrics=parts["metrics"], metrics_by_lead=parts["metrics_by_lead"],
+                     interval_widths=parts["interval_widths"], notes=parts["notes"],
+                     confusion=parts["confusion"], prepared=prepared,
                      actual=actual, best_epoch=parts["best_epoch"], compiles=parts["compiles"],
-                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels,
-                     notes=parts.get("notes", ()))
+                     seconds=parts["seconds"], diagnostics=diagnostics, labels=labels)

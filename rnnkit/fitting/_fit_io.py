@@ -3,13 +3,15 @@
 The folder (our own small layout):
 
     config.json       format "rnnkit-fit", version; the Config; the outcome
-                      (status, best epoch, ...); what predict needs for a new
+                      (status, best epoch, notes, ...); the conformal half widths;
+                      what predict needs for a new
                       frame: input and target names, class labels, the fitted
                       scaler's statistics, window, horizon, index name
     weights.npz       the cell's parameters: U, V, b, W, c (GRU also bn), read back
                       with allow_pickle=False
     history.csv       one row per epoch
     metrics.csv       one row per model
+    metrics_by_lead.csv   one row per (model, lead), regression only
     confusion_<split>.csv   classification only
     diagnostics.npz   the measured Diagnostics (arrays only, no pickle)
     manifest.json     SHA-256 and size of every file above (written last)
@@ -45,7 +47,7 @@ from ..data._windows import Scaler
 from ..recurrent._cells import get_cell
 
 FORMAT = "rnnkit-fit"
-VERSION = 1
+VERSION = 2  # 2: horizon H means leads 1..H (multi-output); interval widths and notes stored
 PARAM_NAMES = ("U", "V", "b", "W", "c")  # the Elman cell's; param_names(cell) for any cell
 MANIFEST = "manifest.json"
 _DIAG_ARRAYS = ("gradient_through_time", "singular_values", "eigenvalues", "saturation",
@@ -79,6 +81,9 @@ def _document(result) -> dict:
         "outcome": {"status": result.status, "best_epoch": result.best_epoch,
                     "compiles": result.compiles, "seconds": result.seconds,
                     "notes": list(result.notes)},
+        # conformal half widths (C levels, L leads, O targets), for forecasts from a loaded fit
+        "interval_widths": None if result.interval_widths is None else
+        [[[float(v) for v in row] for row in level] for level in result.interval_widths],
         "data": {
             "input_names": list(spec.input_names),
             "target_names": list(spec.target_names),
@@ -217,6 +222,8 @@ def save_fit(result, path) -> None:
                                          for k in param_names(result.config.cell)})
         result.history.to_csv(tmp / "history.csv", index=False)
         result.metrics.to_csv(tmp / "metrics.csv", index=True)
+        if len(result.metrics_by_lead):
+            result.metrics_by_lead.to_csv(tmp / "metrics_by_lead.csv", index=True)
         for split, table in result.confusion.items():
             table.to_csv(tmp / f"confusion_{split}.csv")
         if diag is not None:
@@ -327,6 +334,8 @@ def _check_consistent(path: Path, spec, params: dict) -> None:
         raise ValueError(f"{where}: the scaler has no statistics for {missing}")
     n_in = len(spec.input_names)
     n_out = len(spec.target_names) if spec.classes is None else len(spec.classes)
+    if spec.classes is None and cfg.mode == "many-to-one" and cfg.window != "full" and spec.horizon > 1:
+        n_out *= spec.horizon  # leads 1..horizon, lead-major
     h = cfg.hidden
     wfile = repr(str(path / "weights.npz"))
     U, V, W, c = (np.asarray(params[k]) for k in ("U", "V", "W", "c"))
@@ -337,6 +346,22 @@ def _check_consistent(path: Path, spec, params: dict) -> None:
     bad = [k for k in params if not np.isfinite(params[k]).all()]
     if bad:
         raise ValueError(f"{wfile}: weights {bad} hold NaN/inf")
+
+
+def _read_widths(doc: dict, spec):
+    """The stored conformal half widths (C, L, O), or None; checked against the config."""
+    widths = doc.get("interval_widths")
+    if widths is None:
+        return None
+    w = np.asarray(widths, np.float64)
+    cfg = spec.config
+    leads = spec.horizon if (spec.classes is None and cfg.mode == "many-to-one" and cfg.window != "full"
+                             and spec.horizon > 1) else 1
+    want = (len(cfg.coverage), leads, len(spec.target_names))
+    if w.shape != want or not (np.isfinite(w).all() and (w >= 0).all()):
+        raise ValueError(f"`interval_widths` has shape {w.shape} (want {want}: coverage levels, leads, "
+                         "targets) or holds negative/NaN/inf values; the file was edited")
+    return w
 
 
 def _read(file: Path, reader):
@@ -375,11 +400,14 @@ def read_fit(path) -> dict:
     if not _is_fit_folder(path):
         raise ValueError(f"`path` ({str(path)!r}) is not an rnnkit fit folder (config.json with format "
                          f"{FORMAT!r}); save one with result.save(path)")
-    listed = _check_manifest(path)
     doc = _read(path / "config.json", lambda f: json.loads(f.read_text(encoding="utf-8")))
+    if doc.get("version") == 1:
+        raise ValueError(f"{str(path)!r} is a version 1 fit folder, whose `horizon` meant one value that "
+                         "many steps ahead (since version 2: leads 1..horizon at once); fit and save again")
     if doc.get("version") != VERSION:
         raise ValueError(f"{str(path)!r} has fit format version {doc.get('version')!r}; this rnnkit "
                          f"reads version {VERSION}")
+    listed = _check_manifest(path)
     spec = _read(path / "config.json", lambda f: _read_spec(doc))
     params = _read(path / "weights.npz", lambda f: _read_weights(f, param_names(spec.config.cell)))
     _check_consistent(path, spec, params)
@@ -393,9 +421,15 @@ def read_fit(path) -> dict:
         table.index = pd.Index(spec.classes, name="true")
         table.columns = pd.Index(spec.classes, name="predicted")
         confusion[file.stem[len("confusion_"):]] = table
+    by_lead = pd.DataFrame()
+    if "metrics_by_lead.csv" in listed:
+        by_lead = _read(path / "metrics_by_lead.csv",
+                        lambda f: pd.read_csv(f, index_col=[0, 1], float_precision="round_trip"))
+    widths = _read(path / "config.json", lambda f: _read_widths(doc, spec))
     out = doc["outcome"]
     diag = path / "diagnostics.npz"
     return dict(params=params, spec=spec, status=out["status"], history=history, metrics=metrics,
+                metrics_by_lead=by_lead, interval_widths=widths,
                 confusion=confusion, best_epoch=out["best_epoch"], compiles=out["compiles"],
                 seconds=out["seconds"], notes=tuple(str(n) for n in out.get("notes", [])),
                 read_diagnostics=lambda: _read(diag, _read_diagnostics) if diag.name in listed else None)

@@ -294,6 +294,8 @@ def _numpy_batch(prepared, split, idx):
     """Windows ``idx`` of a split as (x (B,T,I), y, mask (B,T)) numpy arrays."""
     x, y, mask = prepared.windows(split)
     x, y = np.asarray(x[idx]), np.asarray(y[idx])
+    if prepared.leads > 1:  # (B, L, O) -> the network's (B, L*O) outputs, lead-major
+        y = y.reshape(len(y), -1)
     mask = np.ones(x.shape[:2], bool) if mask is None else np.asarray(mask[idx])
     return x, y, mask
 

@@ -177,6 +177,8 @@ def _evaluate(result, split, d1, d2, points):
     cfg = prepared.config
     dtype = np.dtype(cfg.dtype)
     x, y, mask = prepared.windows(split)
+    if prepared.leads > 1:  # (N, L, O) -> the network's (N, L*O) outputs, lead-major
+        y = y.reshape(len(y), -1)
     n, T = x.shape[:2]
     width = max(int(np.shape(result.params["V"])[0]), x.shape[2])
     batch = int(max(1, min(len(points), _BATCH_ELEMENTS // max(n * width, 1))))

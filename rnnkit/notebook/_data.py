@@ -32,7 +32,7 @@ def _shown_rows(result, split):
     """
     p = result.prepared
     target = np.asarray(p.target_rows(split))  # (N,) or (N, T)
-    rows, pos = per_row(target, np.arange(target.size).reshape(target.shape))
+    rows, pos = per_row(target, np.arange(target.size).reshape(target.shape), first=p.leads > 1)
     if p.groups is not None and not p.full and len(rows):
         last = p.groups[rows[-1]]  # one sequence: times of different sequences would interleave
         keep = p.groups[rows] == last

@@ -11,6 +11,7 @@ TypeError naming the argument and the expected shape.
 Training and results:
     training_curves(history, status=)       loss per epoch, best epoch, divergence
     forecast(pred, baseline=)               actual vs predicted over time
+    fan_chart(history, future)              recent history, the forecast past it and its bands
     class_forecast(pred)                    class probabilities and class strips
     metrics_bar(metrics, column=)           one bar per model
     sweep_surface(table, x, y, metric=)     mean metric over two settings
@@ -35,6 +36,7 @@ Example:
 """
 from ._backtest import backtest_folds as backtest_folds
 from ._compare import metrics_bar as metrics_bar
+from ._future import fan_chart as fan_chart
 from ._compare import sweep_surface as sweep_surface
 from ._inside import gate_activity as gate_activity
 from ._inside import gradient_flow as gradient_flow
@@ -47,6 +49,7 @@ from ._training import class_forecast as class_forecast
 from ._training import forecast as forecast
 from ._training import training_curves as training_curves
 
-__all__ = ["training_curves", "forecast", "class_forecast", "metrics_bar", "sweep_surface", "backtest_folds",
+__all__ = ["training_curves", "forecast", "fan_chart", "class_forecast", "metrics_bar", "sweep_surface",
+           "backtest_folds",
            "gradient_flow", "spectrum", "hidden_heatmap", "hidden_path", "loss_surface",
            "loss_slice"]

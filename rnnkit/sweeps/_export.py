@@ -2,7 +2,7 @@
 
 Layout (JSON, described by ``config.schema.json``, draft 2020-12)::
 
-    {"format": "rnnkit.experiment", "version": 1,
+    {"format": "rnnkit.experiment", "version": 2,
      "config":  {...every Config field...},
      "metric":  {"name": "val_rmse", "value": 0.41},
      "metrics": {"val_rmse": 0.41, "persistence_val_rmse": 0.55, ...},
@@ -41,7 +41,11 @@ from ..data._checks import require_column, resolve_columns
 from ..data._config import Config
 
 FORMAT = "rnnkit.experiment"
-VERSION = 1
+VERSION = 2
+# Version 1 read `horizon` H as ONE value H steps ahead; since version 2 it means the H
+# leads 1..H of a multi-output network (and `transform`, `coverage` exist).
+_OLD = {1: "version 1 documents read `horizon` as one value that many steps ahead; since version 2 "
+           "it means leads 1..horizon at once (and adds `transform`, `coverage`)"}
 SCHEMA_PATH = Path(__file__).with_name("config.schema.json")
 _SOFTWARE = ("rnnkit", "jax", "jaxlib", "optax", "numpy", "pandas")
 
@@ -352,6 +356,10 @@ def read_document(source) -> dict:
     if isinstance(doc, dict) and not {"format", "version", "config"} & set(doc):
         validate(doc, part="config", where=where)
         return {"format": FORMAT, "version": VERSION, "config": doc}
+    old = doc.get("version") if isinstance(doc, dict) and doc.get("format") == FORMAT else None
+    if isinstance(old, int) and not isinstance(old, bool) and old in _OLD:
+        raise ValueError(f"{where}: $.version {old} is no longer read: {_OLD[old]}; export the "
+                         f"experiment again (version {VERSION})")
     validate(doc, where=where)
     return doc
 

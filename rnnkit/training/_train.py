@@ -112,14 +112,15 @@ def _series(prepared, dtype, shapes) -> _epoch.Series:
     """The whole series on the device, rows padded with zeros up to shapes['rows']."""
     extra = shapes["rows"] - prepared.inputs.shape[0]
     x = np.asarray(prepared.inputs, dtype=dtype)  # (R, I)
-    y = np.asarray(prepared.targets)
-    y = y.astype(np.int32) if prepared.classes is not None else y.astype(dtype)  # (R,) or (R, O)
+    # Several leads: row r holds the targets of rows r+1..r+L, read at the last input row.
+    y = np.asarray(prepared.lead_targets())
+    y = y.astype(np.int32) if prepared.classes is not None else y.astype(dtype)  # (R,) or (R, L*O)
     if extra:
         x = np.concatenate([x, np.zeros((extra,) + x.shape[1:], x.dtype)])
         y = np.concatenate([y, np.zeros((extra,) + y.shape[1:], y.dtype)])
     return _epoch.Series(jnp.asarray(x), jnp.asarray(y),
                          jnp.asarray(shapes["window"] - prepared.window, jnp.int32),
-                         jnp.asarray(prepared.horizon, jnp.int32))
+                         jnp.asarray(0 if prepared.leads > 1 else prepared.horizon, jnp.int32))
 
 
 def _split(prepared, split: str, entries: int) -> _epoch.Split:
@@ -150,6 +151,9 @@ def activation_index(activation) -> np.ndarray:
 def initial_state(prepared, config: Config):
     """The training state ``train`` starts from: (params, opt_state, shuffling key).
 
+    ``prepared`` needs ``n_inputs`` and ``net_outputs`` (outputs x leads; anything with
+    only ``n_outputs`` is taken as one lead).
+
     One cached compiled program (``_epoch.init_program``) makes all of it; the
     seed, recurrent scale and optimizer hyperparameters are data.
     """
@@ -159,7 +163,8 @@ def initial_state(prepared, config: Config):
         raise ValueError(f"`config.init` (={config.init!r}) is unknown; use one of {INITS}")
     program = _epoch.init_program(optimizer=name, clipping=clipping, dtype=dtype, scheme=config.init,
                                   n_in=prepared.n_inputs, hidden=config.hidden,
-                                  n_out=prepared.n_outputs, cell=config.cell)
+                                  n_out=getattr(prepared, "net_outputs", prepared.n_outputs),
+                                  cell=config.cell)
     hyper = hyperparams(config.optimizer, config.lr, config.clip, config.weight_decay, dtype)
     return program(np.asarray(config.seed, np.int32), np.asarray(config.recurrent_scale, dtype), hyper)
 
@@ -358,7 +363,8 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
       cell: "elman", "gru" or "lstm"; None takes ``prepared.config.cell``.
 
     Returns:
-      numpy array in the params' dtype: many-to-one (N, O), many-to-many (N, T, O),
+      numpy array in the params' dtype: many-to-one (N, O) (with L leads (N, L*O),
+      lead-major: ``reshape(N, L, O)``), many-to-many (N, T, O),
       in window order (``prepared.starts[split]``), T the Prepared's own window.
       Regression: scaled predictions (``prepared.scaler.inverse_targets`` maps
       them back); classification: logits (argmax for the class code).
@@ -387,8 +393,8 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
             o = program(p, series, whole.starts[at:at + batch_size],
                         whole.lengths[at:at + batch_size], valid, act)
             parts.append(np.asarray(o)[:min(batch_size, n - at)])
-    out_shape = (0, prepared.n_outputs) if mode == "many-to-one" else \
-        (0, dims["window"], prepared.n_outputs)
+    out_shape = (0, prepared.net_outputs) if mode == "many-to-one" else \
+        (0, dims["window"], prepared.net_outputs)
     out = np.concatenate(parts) if parts else np.zeros(out_shape, dtype)
     if mode == "many-to-many":
         out = out[:, dims["window"] - prepared.window:]  # drop the front padding
