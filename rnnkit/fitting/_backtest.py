@@ -35,6 +35,8 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import time
+import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import List, Optional, Sequence, Tuple, Union
 
@@ -44,7 +46,7 @@ import pandas as pd
 
 from ..data._checks import resolve_columns
 from ..data._config import Config
-from ..data._errors import DataError
+from ..data._errors import DataError, SmallPartWarning
 from ..data._prepare import prepare
 from ..evaluation._baselines import baseline_predictions
 from ..evaluation._significance import LEVEL, diebold_mariano, mcnemar, verdict
@@ -216,7 +218,8 @@ def measure_lookback(df: pd.DataFrame, config: Config, column: str) -> Tuple[int
     probe = df.assign(**{column: part})
     fallback = int(config.window) + int(config.horizon) - 1 + int(config.gap), 1
     try:
-        p = prepare(probe, config)
+        with _quiet():
+            p = prepare(probe, config)
     except DataError:
         return fallback
     rows = p.target_rows("test")
@@ -617,15 +620,26 @@ def _where(f: Fold) -> str:
     return f"fold {f.fold}" + (f" (forecast rows {f.origin}..{f.end - 1})" if f.origin is not None else "")
 
 
+@contextmanager
+def _quiet():
+    """Fold parts are short by design: their small-part warnings stay in each fold's notes
+    (one warning per fold and part buried the verdict); the verdict weighs all folds."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SmallPartWarning)
+        yield
+
+
 def _prepare_fold(frame, config, f):
     try:
-        return prepare(frame, config)
+        with _quiet():
+            return prepare(frame, config)
     except DataError as e:
         raise DataError(f"{_where(f)}: {e}") from None
 
 
 def _fit_fold(frame, config, f, shapes):
     try:
-        return fit(frame, config, progress=False, shapes=shapes)
+        with _quiet():
+            return fit(frame, config, progress=False, shapes=shapes)
     except DataError as e:
         raise DataError(f"{_where(f)}: {e}") from None
