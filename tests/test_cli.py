@@ -148,3 +148,23 @@ def test_forecast_command_writes_the_future_rows(data_csv, tmp_path, capsys):
     assert main(["forecast", str(tmp_path / "model"), "--data", str(tmp_path / "recent.csv"),
                  "--steps", "9", "--out", str(out)]) == 2
     assert "future row" in capsys.readouterr().err
+
+
+def test_the_report_compares_cells_when_a_sweep_varied_them():
+    import statsmodels.api as sm
+
+    from rnnkit.cli._report import cell_comparison
+
+    # statsmodels' Nile series (open data shipped in the package)
+    df = sm.datasets.nile.load_pandas().data[["volume"]]
+    sw = rnnkit.sweep(df, rnnkit.Config(target="volume", window=6, hidden=3, epochs=2),
+                      {"cell": ["elman", "gru"]}, progress=False)
+    table, sentence = cell_comparison(sw)
+    s = sw.summary()
+    assert list(table["cell"]) == list(s["cell"])  # ranked, one row per cell
+    assert table[sw.metric].tolist() == s[sw.metric].tolist()
+    assert sentence.startswith(f"Best cell: {s['cell'].iloc[0]}") and "best baseline" in sentence
+    base = table["best baseline"].iloc[0]
+    assert table[f"baseline {sw.metric}"].iloc[0] == s[f"{base}_{sw.metric}"].iloc[0]
+    assert cell_comparison(rnnkit.sweep(df, rnnkit.Config(target="volume", window=6, hidden=3, epochs=2),
+                                        {"hidden": [2, 3]}, progress=False)) is None

@@ -642,3 +642,26 @@ def test_a_script_that_exits_while_the_panel_trains_ends_cleanly(tmp_path):
     assert "leaving at epoch" in proc.stdout
     assert "worker alive at exit: False" in proc.stdout  # stopped and joined, not cut off
     assert "FATAL" not in proc.stderr and "Traceback" not in proc.stderr, proc.stderr[-2000:]
+
+
+def test_forecast_page_shows_the_future_past_the_end_when_the_target_is_the_only_input():
+    import statsmodels.api as sm
+
+    from rnnkit.notebook._panel import Panel
+
+    # statsmodels' Nile series (open data shipped in the package): one column, so
+    # forecast() needs no future inputs and the page draws it below the held-out range.
+    df = sm.datasets.nile.load_pandas().data[["volume"]]
+    p = Panel(df, rnnkit.Config(target="volume", window=8, horizon=4, hidden=4, epochs=2))
+    p.train_button.click()
+    assert p.wait(WAIT) and p.status_level == "ok"
+    future = p.result.forecast()
+    assert len(future) == 4 and p.views.images["future"].value
+    assert "next 4 steps past the end" in p.views.notes["Forecast"].value
+    # With another input column, the page says what a forecast past the end needs instead.
+    df2 = df.assign(other=np.arange(len(df), dtype=float))
+    q = Panel(df2, rnnkit.Config(target="volume", window=8, hidden=4, epochs=2))
+    q.train_button.click()
+    assert q.wait(WAIT) and q.status_level == "ok"
+    assert not q.views.images["future"].value
+    assert "forecast(df=frame)" in q.views.notes["Forecast"].value

@@ -7,9 +7,11 @@ import io
 from datetime import datetime, timezone
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from ..data._atomic import write_text
+from ..sweeps._sweep import higher_is_better
 
 _CSS = """
 body { font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 76rem; color: #1d2430; }
@@ -94,6 +96,45 @@ def report_figures(result, sweep_result=None) -> dict:
     return figs
 
 
+def cell_comparison(sweep_result):
+    """When a sweep varied the cell: each cell's best setting against the best baseline.
+
+    Returns (table, sentence) or None. The table has one row per cell (its best
+    setting's mean score and the best baseline's mean on the same runs); the
+    sentence names the winning cell and its margins.
+    """
+    if "cell" not in sweep_result.varied:
+        return None
+    s = sweep_result.summary()
+    m = sweep_result.metric
+    s = s[np.isfinite(s[m].to_numpy(dtype=float))]
+    if s.empty:
+        return None
+    lower = not higher_is_better(m)
+    best = s.groupby("cell", sort=False).head(1)  # summary is ranked: the first row per cell
+    metric_name = m.split("_", 1)[1] if m.startswith(("val_", "test_")) else m
+    split = m.split("_", 1)[0]
+    base_cols = [c for c in s.columns if c.endswith(f"_{m}") and c != m]
+    rows = []
+    for _, r in best.iterrows():
+        bases = {c[:-len(m) - 1]: float(r[c]) for c in base_cols if np.isfinite(r[c])}
+        name = (min if lower else max)(bases, key=bases.get) if bases else None
+        rows.append({"cell": r["cell"], m: float(r[m]), "best baseline": name,
+                     f"baseline {m}": bases.get(name, float("nan")) if name else float("nan")})
+    table = pd.DataFrame(rows)
+    win = table.iloc[0]
+    words = [f"Best cell: {win['cell']} ({split} {metric_name} {win[m]:.4g})"]
+    for _, r in table.iloc[1:].iterrows():
+        words.append(f"{r['cell']} {r[m]:.4g}")
+    sentence = words[0] + (", against " + ", ".join(words[1:]) if len(words) > 1 else "")
+    if win["best baseline"]:
+        b = win[f"baseline {m}"]
+        gain = (b - win[m]) / abs(b) if lower else (win[m] - b) / abs(b)
+        sentence += (f"; the best baseline, {win['best baseline']}, scores {b:.4g}: the network is "
+                     f"{abs(gain):.1%} {'better' if gain > 0 else 'worse'}.")
+    return table, sentence
+
+
 def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report",
                  future: "pd.DataFrame | None" = None) -> Path:
     """Write one HTML file with the fit's tables and figures (and the sweep's), atomically.
@@ -129,6 +170,11 @@ def write_report(path, result, *, sweep_result=None, title: str = "rnnkit report
     if result.notes:
         parts += ["<h2>Notes</h2><ul>"] + [f"<li>{html.escape(n)}</li>" for n in result.notes] + ["</ul>"]
     if sweep_result is not None:
+        cells = cell_comparison(sweep_result)
+        if cells is not None:
+            table, sentence = cells
+            parts += ["<h2>Cells compared</h2>", f"<p>{html.escape(sentence)}</p>",
+                      _table(table, index=False)]
         parts += ["<h2>Sweep, ranked</h2>", _table(sweep_result.summary().head(30), index=False)]
     parts.append("<h2>Figures</h2>")
     for name, fig in figs.items():

@@ -18,6 +18,7 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from .. import plots
+from ..fitting._fit import future_figure
 from ._data import (baseline_series, forecast_frame, gradient_factor, gradient_norms,
                           headline, loss_planes, score_column, sweep_headline, window_times)
 
@@ -25,7 +26,7 @@ DPI = 100
 # Figure sizes in inches: one figure across the page, or two side by side.
 WIDE = (7.6, 3.6)
 HALF = (4.7, 3.5)
-SIZES = {"training": WIDE, "forecast": WIDE, "gradient": HALF, "spectrum": HALF,
+SIZES = {"training": WIDE, "forecast": WIDE, "future": WIDE, "gradient": HALF, "spectrum": HALF,
          "heatmap": HALF, "path": HALF, "surface": HALF, "slice": HALF, "sweep": (6.4, 4.0),
          "scores": (7.0, 2.9)}
 
@@ -35,6 +36,25 @@ def sized(name: str, builder: Callable[..., Figure], *args, caption: str = "", *
     `caption` (what made the figure: settings and run) goes along its top in small grey type."""
     fig = Figure(figsize=SIZES[name], layout="constrained")
     fig = builder(*args, ax=fig.add_subplot(), **kwargs)
+    if caption:
+        fig.suptitle(caption, x=0.01, ha="left", fontsize=7.5, color="#666666")
+    return fig
+
+
+def future_note(result) -> str:
+    """What the Forecast page says of the forecast past the end of the data."""
+    if result.can_forecast():
+        steps = result.spec.horizon
+        return (f" Below: the next {plural(steps, 'step')} past the end of the data "
+                "(result.forecast()), with prediction intervals from the validation errors.")
+    if result.config.mode == "many-to-one":
+        return (" A forecast past the end needs the other inputs' future values: put them in the "
+                "frame's last rows with the target empty and call result.forecast(df=frame).")
+    return ""
+
+
+def _captioned(fig: Figure, caption: str) -> Figure:
+    fig.set_size_inches(*SIZES["future"])
     if caption:
         fig.suptitle(caption, x=0.01, ha="left", fontsize=7.5, color="#666666")
     return fig
@@ -124,7 +144,7 @@ def _pair(a: widgets.Widget, b: widgets.Widget) -> widgets.HBox:
 STYLE = ("<style>.rnnkit-previous img, img.rnnkit-previous {opacity: 0.4; filter: grayscale(60%);}"
          "</style>")
 # Which images each page shows (for the notes and for marking a page as previous).
-PAGE_IMAGES = {"Training": ("training",), "Forecast": ("forecast",),
+PAGE_IMAGES = {"Training": ("training",), "Forecast": ("forecast", "future"),
                "Gradients": ("gradient", "spectrum"), "States": ("heatmap", "path"),
                "Surface": ("surface", "slice"), "Sweep": ("sweep",), "Scores": ("scores",)}
 SURFACE_CLIP = 0.8  # the colour scale ends at this quantile of the surface: the basin gets the colours
@@ -142,7 +162,7 @@ class FigureViews:
     PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Scores", "JSON")
 
     def __init__(self):
-        names = ("training", "forecast", "gradient", "spectrum", "heatmap", "path", "surface",
+        names = ("training", "forecast", "future", "gradient", "spectrum", "heatmap", "path", "surface",
                  "slice", "sweep", "scores")
         self.images = {n: _image(n) for n in names}
         self.notes = {p: _note("Press Train to draw this page.") for p in self.PAGES}
@@ -175,7 +195,7 @@ class FigureViews:
         i = self.images
         pages = {
             "Training": [i["training"]],
-            "Forecast": [i["forecast"]],
+            "Forecast": [i["forecast"], i["future"]],
             "Gradients": [_pair(i["gradient"], i["spectrum"]), self.diagnostics_table],
             "States": [self.window_slider, _pair(i["heatmap"], i["path"])],
             "Surface": [_pair(i["surface"], i["slice"])],
@@ -288,7 +308,7 @@ class FigureViews:
         else:
             base_name, base = baseline_series(result, pred.index)
             self._note("Forecast", f"Held-out range in original units; dashed: the best baseline "
-                                   f"({base_name}).")
+                                   f"({base_name})." + future_note(result))
             target = ", ".join(result.prepared.target_names)
 
             def make():
@@ -298,6 +318,15 @@ class FigureViews:
                 return fig
 
             self._draw("Forecast", "forecast", make)
+            self._draw_future(result, caption)
+
+    def _draw_future(self, result, caption: str) -> None:
+        """Below the held-out range: the forecast past the end of the data, with its bands."""
+        if not result.can_forecast():
+            self.set_image("future", b"")
+            return
+        self._draw("Forecast", "future", lambda: _captioned(
+            future_figure(result, result.forecast()), caption))
 
     def show_inside(self, result, caption: str) -> None:
         """The gradient and state pages (measures the diagnostics on first use)."""
