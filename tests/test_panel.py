@@ -10,6 +10,8 @@ import json
 
 import ipywidgets as widgets
 import matplotlib.image
+import html
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -665,3 +667,24 @@ def test_forecast_page_shows_the_future_past_the_end_when_the_target_is_the_only
     assert q.wait(WAIT) and q.status_level == "ok"
     assert not q.views.images["future"].value
     assert "forecast(df=frame)" in q.views.notes["Forecast"].value
+
+
+def test_backtest_button_fills_the_backtest_page_with_verdicts_and_fold_bars():
+    import statsmodels.api as sm
+
+    from rnnkit.notebook._panel import Panel
+
+    # statsmodels' Nile series (open data shipped in the package)
+    df = sm.datasets.nile.load_pandas().data[["volume"]]
+    p = Panel(df, rnnkit.Config(target="volume", window=6, hidden=3, epochs=2))
+    p.folds.value = 3
+    p.backtest_button.click()
+    assert p.wait(WAIT) and p.status_level == "ok", p.status.value
+    r = p.backtest_result
+    assert r is not None and r.metrics.index.get_level_values(0).nunique() == 3  # three folds
+    (box,) = p.views.backtest_box.children
+    assert box.figure.value and "rnnkit-fig-backtest" in box.figure._dom_classes
+    for v in r.comparison["verdict"]:
+        assert html.escape(v) in box.verdicts.value
+    assert p.views.tab.selected_index == p.views.PAGES.index("Backtest")
+    assert r.comparison["verdict"].iloc[0] in p.status.value

@@ -1,7 +1,7 @@
 """A notebook view of a backtest: the verdicts in words, the score of every fold, the summary table.
 
-Not wired into the panel's buttons: ``backtest_view(rnnkit.backtest(df, cfg))`` shows one
-result. Every figure comes from ``rnnkit.plots.backtest_folds``.
+The panel's Backtest button shows it on its Backtest page; ``backtest_view(rnnkit.backtest(df,
+cfg))`` shows one result anywhere. Every figure comes from ``rnnkit.plots.backtest_folds``.
 
     >>> bt = rnnkit.backtest(df, cfg, folds=5)
     >>> rnnkit.notebook.backtest_view(bt)       # display it

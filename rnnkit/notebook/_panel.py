@@ -27,6 +27,7 @@ import pandas as pd
 
 from ..data._config import Config
 from ..data._errors import DataError
+from ..fitting._backtest import backtest
 from ..fitting._fit import fit, resolve_config
 from ..sweeps._export import fingerprint, load_config, save_config
 from ..sweeps._plan import plan
@@ -35,6 +36,7 @@ from ..sweeps._store import RunStore, run_key
 from ..sweeps._sweep import sweep
 from ._controls import (RANGES, build_controls, pair_box, read_config, read_lr, read_space,
                         set_slider, write_config)
+from ._backtest_view import backtest_view
 from ._views import FigureViews, caption, plural
 
 _COLOURS = {"info": "#36454f", "ok": "#1b6e3a", "warn": "#8a5a00", "error": "#b00020"}
@@ -158,6 +160,14 @@ class Panel:
         self.stop_button = _button("Stop", "warning", "stop", "stop",
                                    "stop after the current epoch / run; finished runs are kept")
         self.stop_button.disabled = True
+        self.backtest_button = _button("Backtest", "", "history", "backtest",
+                                       "score the settings on the left over several forecast "
+                                       "origins, with a significance test against each baseline")
+        self.folds = widgets.BoundedIntText(value=4, min=2, max=20, description="folds",
+                                            style={"description_width": "40px"},
+                                            layout=widgets.Layout(width="110px"))
+        self.folds.add_class("rnnkit-folds")
+        self.backtest_result = None
         self.export_button = _button("Save settings", "", "download", "export",
                                      "write the settings now on the controls to the JSON file")
         self.best_button = _button("Save sweep winner", "", "trophy", "export-best",
@@ -182,6 +192,7 @@ class Panel:
 
         self.train_button.on_click(lambda _: self._start_train())
         self.sweep_button.on_click(lambda _: self._start_sweep())
+        self.backtest_button.on_click(lambda _: self._start_backtest())
         self.stop_button.on_click(lambda _: self._request_stop())
         self.export_button.on_click(lambda _: self._export())
         self.best_button.on_click(lambda _: self._export_best())
@@ -246,7 +257,8 @@ class Panel:
         settings.add_class("rnnkit-settings")
         actions = widgets.HBox([self.train_button, self.sweep_button, self.stop_button])
         files = widgets.HBox([self.export_button, self.best_button, self.load_button])
-        left = widgets.VBox([settings, actions, self.browse, self.progress, self.phase,
+        judge = widgets.HBox([self.backtest_button, self.folds])
+        left = widgets.VBox([settings, actions, judge, self.browse, self.progress, self.phase,
                              self.progress_label, c["path"], files, self.status],
                             layout=widgets.Layout(width="380px", min_width="380px",
                                                   margin="0 12px 0 0"))
@@ -322,7 +334,7 @@ class Panel:
         with self._view_lock:  # a run being drawn from the sweep yields to the new job
             self._generation += 1
             self._view_request = None
-        for b in (self.train_button, self.sweep_button, self.load_button):
+        for b in (self.train_button, self.sweep_button, self.backtest_button, self.load_button):
             b.disabled = True
         self.stop_button.disabled = False
         self.progress_label.value = label
@@ -337,7 +349,8 @@ class Panel:
             except Exception as e:  # the panel must survive anything a run throws
                 self._fail(f"The run failed ({type(e).__name__})", e)
             finally:
-                for b in (self.train_button, self.sweep_button, self.load_button):
+                for b in (self.train_button, self.sweep_button, self.backtest_button,
+                          self.load_button):
                     b.disabled = False
                 self.stop_button.disabled = True
 
@@ -463,6 +476,28 @@ class Panel:
         self.views.mark_previous("A sweep is running.")
         self._set_phase("training")
         self._run("sweeping", lambda: self._sweep(cfg, space, seeds, store, done))
+
+    def _start_backtest(self) -> None:
+        try:
+            cfg = self.config()
+        except (ValueError, TypeError) as e:
+            self._say("error", f"A setting is not valid: {e}")
+            return
+        folds = int(self.folds.value)
+        self._say("info", f"Backtesting these settings over {plural(folds, 'fold')} (each fold "
+                          "trains on the rows before its origin; Stop acts between jobs only)...")
+        self._set_phase("training")
+        self._run("backtesting", lambda: self._backtest(cfg, folds))
+
+    def _backtest(self, cfg: Config, folds: int) -> None:
+        result = backtest(self._df, cfg, folds, progress=False)
+        if self._closing:
+            return
+        self.backtest_result = result
+        self.views.show_backtest(backtest_view(result))
+        self._set_phase(None)
+        self.progress_label.value = f"done: backtest over {plural(folds, 'fold')}"
+        self._say("ok", f"Backtest finished. {result.comparison['verdict'].iloc[0]}.")
 
     def _on_run(self, row) -> None:
         self.progress.value = min(self.progress.value + 1, self.progress.max)

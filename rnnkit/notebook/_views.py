@@ -159,7 +159,8 @@ class FigureViews:
     they are computing; figures of an earlier run are marked as previous.
     """
 
-    PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Scores", "JSON")
+    PAGES = ("Training", "Forecast", "Gradients", "States", "Surface", "Sweep", "Backtest", "Scores",
+             "JSON")
 
     def __init__(self):
         names = ("training", "forecast", "future", "gradient", "spectrum", "heatmap", "path", "surface",
@@ -167,6 +168,8 @@ class FigureViews:
         self.images = {n: _image(n) for n in names}
         self.notes = {p: _note("Press Train to draw this page.") for p in self.PAGES}
         self.notes["Sweep"].value = self.notes["Sweep"].value.replace("Train", "Sweep")
+        self.notes["Backtest"].value = self.notes["Backtest"].value.replace("Train", "Backtest")
+        self.backtest_box = widgets.VBox()
         self.notes["JSON"].value = self.notes["JSON"].value.replace(
             "Press Train to draw this page.", "Save or load a config to show its JSON here.")
         for page, note in self.notes.items():
@@ -200,6 +203,7 @@ class FigureViews:
             "States": [self.window_slider, _pair(i["heatmap"], i["path"])],
             "Surface": [_pair(i["surface"], i["slice"])],
             "Sweep": [widgets.HBox([self.sweep_x, self.sweep_y]), i["sweep"], self.sweep_table],
+            "Backtest": [self.backtest_box],
             "Scores": [self.metrics_table, i["scores"]],
             "JSON": [self.document],
         }
@@ -444,6 +448,14 @@ class FigureViews:
             self._draw_sweep()
 
     # --- the config file ---
+    def show_backtest(self, box) -> None:
+        """The Backtest page shows `box` (``_backtest_view.backtest_view`` of a result)."""
+        self._note("Backtest", "Each fold trains on the rows before its forecast origin and "
+                               "forecasts the block after it; every model is scored on the same "
+                               "blocks.")
+        self.backtest_box.children = (box,)
+        self.select("Backtest")
+
     def show_document(self, path: str, text: str) -> None:
         self.document.value = (f"<div style='color:#555'>{html.escape(path)}</div>"
                                "<pre style='font-size:12px;line-height:1.3;background:#f6f8fa;"
