@@ -177,3 +177,20 @@ def load_average() -> List[float]:
         return [round(x, 2) for x in os.getloadavg()]
     except OSError:
         return []
+
+
+def timed_rounds(fns, min_seconds, min_reps, max_reps):
+    """Seconds of each fn() per round, in rounds (one call of each per round, in turn), so that
+    every side sees the same load; each is warmed up twice first. Returns a list per fn."""
+    for fn in fns:
+        fn()
+        fn()
+    times = [[] for _ in fns]
+    start = time.perf_counter()
+    while len(times[0]) < max_reps and (len(times[0]) < min_reps
+                                        or time.perf_counter() - start < min_seconds):
+        for fn, ts in zip(fns, times):
+            t = time.perf_counter()
+            fn()
+            ts.append(time.perf_counter() - t)
+    return times

@@ -25,7 +25,6 @@ import argparse
 import os
 import statistics
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -36,23 +35,6 @@ import _util  # noqa: E402
 from bench_step import SHAPES, SMOKE_SHAPES, STEPS, _batches  # noqa: E402
 
 TARGET_RATIO = 1.5  # median over the shapes of torch ms / rnnkit ms, per cell
-
-
-def timed_rounds(fns, min_seconds, min_reps, max_reps):
-    """Seconds of each fn() per round, in rounds (one call of each per round, in turn), so that
-    every side sees the same load; each is warmed up twice first. Returns a list per fn."""
-    for fn in fns:
-        fn()
-        fn()
-    times = [[] for _ in fns]
-    start = time.perf_counter()
-    while len(times[0]) < max_reps and (len(times[0]) < min_reps
-                                        or time.perf_counter() - start < min_seconds):
-        for fn, ts in zip(fns, times):
-            t = time.perf_counter()
-            fn()
-            ts.append(time.perf_counter() - t)
-    return times
 
 
 def jax_runners(cell, B, T, I, H):
@@ -145,7 +127,7 @@ def main(argv=None):
     for cell in cells:
         for B, T, I, H in shapes:
             fast, plain, rel = jax_runners(cell, B, T, I, H)
-            rounds = timed_rounds([fast, plain, torch_runner(cell, B, T, I, H)], 5 * min_s, min_reps,
+            rounds = _util.timed_rounds([fast, plain, torch_runner(cell, B, T, I, H)], 5 * min_s, min_reps,
                                   max_reps)
             t_fast, t_plain, t_torch = (statistics.median(ts) / STEPS for ts in rounds)
             b_fast, b_plain, b_torch = (min(ts) / STEPS for ts in rounds)

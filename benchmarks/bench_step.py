@@ -67,20 +67,9 @@ def timed(fn, min_seconds, min_reps, max_reps):
 
 
 def timed_together(fns, min_seconds, min_reps, max_reps):
-    """Median seconds of each fn(), timed in rounds (one call of each per round, in turn), so
-    that every side sees the same load on a shared machine; each is warmed up twice first."""
-    for fn in fns:
-        fn()
-        fn()
-    times = [[] for _ in fns]
-    start = time.perf_counter()
-    while len(times[0]) < max_reps and (len(times[0]) < min_reps
-                                        or time.perf_counter() - start < min_seconds):
-        for fn, ts in zip(fns, times):
-            t = time.perf_counter()
-            fn()
-            ts.append(time.perf_counter() - t)
-    return [statistics.median(ts) for ts in times]
+    """Median seconds of each fn(), timed in rounds (``_util.timed_rounds``), so that every
+    side sees the same load on a shared machine."""
+    return [statistics.median(ts) for ts in _util.timed_rounds(fns, min_seconds, min_reps, max_reps)]
 
 
 def numpy_matmul_gflops(reps):
