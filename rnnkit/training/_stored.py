@@ -28,6 +28,7 @@ your home, is), never a folder other people can write to.
 """
 from __future__ import annotations
 
+import functools
 import hashlib
 import logging
 import os
@@ -241,3 +242,35 @@ def _save(store, entry: str, compiled) -> bool:
 def stored(jitted: Callable, key: tuple) -> StoredProgram:
     """``StoredProgram(jitted, key)``."""
     return StoredProgram(jitted, key)
+
+
+def stored_jit(*, static_argnames: tuple = (), **jit_options):
+    """Decorator: like ``partial(jax.jit, static_argnames=...)``, each static choice a StoredProgram.
+
+    The decorated function takes its array arguments by position and its static
+    arguments (hashable) by keyword; every distinct set of static values gets its
+    own StoredProgram, keyed by the function's module, name and those values.
+    """
+    def wrap(fn):
+        programs: dict = {}
+        lock = threading.Lock()
+        name = (fn.__module__, fn.__qualname__)
+
+        @functools.wraps(fn)
+        def call(*args, **kwargs):
+            unknown = sorted(set(kwargs) - set(static_argnames))
+            if unknown:
+                raise TypeError(f"{fn.__qualname__}() takes {unknown} by position, not by keyword")
+            static = tuple(sorted(kwargs.items()))
+            program = programs.get(static)
+            if program is None:
+                with lock:
+                    program = programs.get(static)
+                    if program is None:
+                        jitted = jax.jit(functools.partial(fn, **kwargs), **jit_options)
+                        program = programs[static] = StoredProgram(jitted, name + static)
+            return program(*args)
+
+        return call
+
+    return wrap
