@@ -21,7 +21,6 @@ import time
 from typing import Callable, Dict, NamedTuple, Optional, Sequence
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
@@ -118,9 +117,9 @@ def _series(prepared, dtype, shapes) -> _epoch.Series:
     if extra:
         x = np.concatenate([x, np.zeros((extra,) + x.shape[1:], x.dtype)])
         y = np.concatenate([y, np.zeros((extra,) + y.shape[1:], y.dtype)])
-    return _epoch.Series(jnp.asarray(x), jnp.asarray(y),
-                         jnp.asarray(shapes["window"] - prepared.window, jnp.int32),
-                         jnp.asarray(0 if prepared.leads > 1 else prepared.horizon, jnp.int32))
+    return _epoch.Series(*jax.device_put((x, y, np.asarray(shapes["window"] - prepared.window, np.int32),
+                                          np.asarray(0 if prepared.leads > 1 else prepared.horizon,
+                                                     np.int32))))
 
 
 def _split(prepared, split: str, entries: int) -> _epoch.Split:
@@ -317,8 +316,7 @@ def _setup(prepared, config: Config, dims: Dict[str, int]):
                                    clipping=clipping, dtype=dtype, batch=batch,
                                    val_batch=val_batch, steps=dims["window"], cell=config.cell)
     return state, _Run(program, _series(prepared, dtype, dims),
-                       jax.tree.map(jnp.asarray, train_split), jax.tree.map(jnp.asarray, val_split),
-                       jnp.asarray(activation_index(config.activation)))
+                       *jax.device_put((train_split, val_split, activation_index(config.activation))))
 
 
 def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience, stop, score=None):
@@ -384,7 +382,7 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
     with precision(dtype.name):
         series = _series(prepared, dtype, dims)
         whole = _split(prepared, split, _round_up(n, batch_size))
-        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in params.items()}
+        p = jax.device_put({k: np.asarray(v, dtype) for k, v in params.items()})
         program = _epoch.outputs_program(mode=mode, steps=dims["window"],
                                          cell=prepared.config.cell if cell is None else cell)
         parts = []
