@@ -15,8 +15,9 @@ has no branch).
 Mask: a False step is padding; the state is held across it (h_t = h_{t-1})
 and it adds no loss term. Many-to-one uses the output at the last step.
 
-``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT)
-for Elman and through ``_gated.states_fast`` for the gated cells;
+``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT;
+``_scan.last_state_fast`` for a many-to-one loss) for Elman and through
+``_gated.states_fast`` for the gated cells;
 ``_hidden_states_autodiff`` keeps the plain autodiff scan for tests and benchmarks.
 """
 from __future__ import annotations
@@ -184,6 +185,16 @@ def _states(inp: _Inputs, act, fast: bool, cell: str = "elman"):
     return lax.switch(act, branches, args)
 
 
+def _last_state(inp: _Inputs, act):
+    """The Elman state after the last step (B, H), through ``_scan.last_state_fast``."""
+    p = inp.params
+    args = (inp.xs, p["U"], p["V"], p["b"], inp.h0, inp.mask)
+    if isinstance(act, str):
+        return _scan.last_state_fast(act, *args)
+    branches = [lambda a, name=name: _scan.last_state_fast(name, *a) for name in ACTIVATIONS]
+    return lax.switch(act, branches, args)
+
+
 def _project_out(h, p):
     """o = h W + c over the leading axes of h (..., H) -> (..., O)."""
     o = _scan.times(h, p["W"]) if h.ndim == 3 else h @ p["W"]
@@ -301,13 +312,17 @@ def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast, cell="elm
     act = _resolve_activation(activation)
     inp = _prepare(params, xs, mask, h0, cell)
     y = _prepare_targets(ys, inp, task, mode)
-    hs = _states(inp, act, fast, cell)  # (T, B, H)
     n_out = inp.params["W"].shape[1]
     if mode == "many-to-many":
+        hs = _states(inp, act, fast, cell)  # (T, B, H)
         o = _project_out(hs, inp.params)  # (T, B, O)
         w = None if inp.mask is None else inp.mask[:, :, 0]  # (T, B)
     else:
-        o = _project_out(hs[-1], inp.params)  # (B, O): the last step; padding held the state
+        # The last step; padding held the state. Elman's fast path may carry only that state.
+        B, H = inp.h0.shape
+        by_last = fast and cell == "elman" and B * H <= _scan.LAST_STATE_MAX
+        last = _last_state(inp, act) if by_last else _states(inp, act, fast, cell)[-1]
+        o = _project_out(last, inp.params)  # (B, O)
         # A sequence counts when any of its steps is real (all-padding rows fill batches).
         w = None if inp.mask is None else jnp.any(inp.mask[:, :, 0], axis=0)  # (B,)
     if task == "classification":
