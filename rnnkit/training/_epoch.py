@@ -27,6 +27,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from jax import lax
+from jax.flatten_util import ravel_pytree
 
 from ..recurrent._cells import init_traceable
 from ..recurrent._model import loss as model_loss
@@ -193,26 +194,38 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
         def loss_fn(p, x, y, mask):
             return model_loss(p, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
 
+        # The optimizer works on ONE vector of all parameters (and its state likewise): the
+        # same elementwise arithmetic as leaf by leaf, in a few operations per step instead
+        # of a few per leaf (the global norm sums in another order: equal to rounding).
+        flat, unravel = ravel_pytree(params)
+        like = lambda t: jax.tree.structure(t) == jax.tree.structure(params)  # noqa: E731
+        flat_opt = jax.tree.map(lambda t: ravel_pytree(t)[0] if like(t) else t, opt_state,
+                                is_leaf=like)
+
         def body(carry):
-            i, params, opt_state, total, count, norms, finite = carry
+            i, flat, opt_state, total, count, norms, finite = carry
             at = i * batch
             valid = at + jnp.arange(batch, dtype=jnp.int32) < train.n  # (batch,)
             idx = lax.dynamic_slice(order, (at,), (batch,))  # (batch,)
             x, y, mask = gather(series, train.starts[idx], train.lengths[idx], valid,
                                 steps=steps, mode=mode)
-            value, grads = jax.value_and_grad(loss_fn)(params, x, y, mask)
+            value, grads = jax.value_and_grad(loss_fn)(unravel(flat), x, y, mask)
+            grads = ravel_pytree(grads)[0]
             norm = optax.tree.norm(grads)  # before clipping
-            updates, opt_state = opt.update(grads, opt_state, params)
-            params = optax.apply_updates(params, updates)
+            updates, opt_state = opt.update(grads, opt_state, flat)
+            flat = optax.apply_updates(flat, updates)
             c = _terms(mask, valid, mode, dtype)
             finite = finite & jnp.isfinite(value) & jnp.isfinite(norm)
-            return i + 1, params, opt_state, total + value * c, count + c, norms + norm, finite
+            return i + 1, flat, opt_state, total + value * c, count + c, norms + norm, finite
 
         zero = jnp.zeros((), dtype)
-        init = (jnp.zeros((), jnp.int32), params, opt_state, zero, zero, zero, jnp.ones((), bool))
+        init = (jnp.zeros((), jnp.int32), flat, flat_opt, zero, zero, zero, jnp.ones((), bool))
         # Stop at the first non-finite step: the rest of the epoch cannot recover.
-        i, params, opt_state, total, count, norms, finite = lax.while_loop(
+        i, flat, flat_opt, total, count, norms, finite = lax.while_loop(
             lambda c: (c[0] < n_batches) & c[-1], body, init)
+        params = unravel(flat)
+        opt_state = jax.tree.map(lambda t, f: unravel(f) if like(t) else f, opt_state, flat_opt,
+                                 is_leaf=like)
         val_loss = _split_loss(params, series, val, act, task=task, mode=mode,
                                steps=steps, batch=val_batch, cell=cell)
         stats = EpochStats(total / jnp.maximum(count, 1), norms / jnp.maximum(i, 1).astype(dtype),
