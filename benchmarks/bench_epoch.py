@@ -89,7 +89,9 @@ def epoch_runner(pkg, df, fields):
     train = importlib.import_module(pkg.__name__ + ".training._train")
     prepared = pkg.prepare(df, pkg.Config(**fields))
     dims = train._check_shapes(None, prepared)
-    state, run = train._setup(prepared, prepared.config, dims)
+    # as train() sets it up for an unpadded run (the old code has no mask-free program)
+    extra = {"uniform": train._mask_free(prepared, prepared.config, None)} if hasattr(train, "_mask_free") else {}
+    state, run = train._setup(prepared, prepared.config, dims, **extra)
 
     def one():
         return jax.block_until_ready(run.program(state, run.series, run.train, run.val, run.act))

@@ -31,6 +31,7 @@ from jax.flatten_util import ravel_pytree
 
 from ..recurrent._cells import init_traceable
 from ..recurrent._model import loss as model_loss
+from ..recurrent._model import loss_counted as model_loss_counted
 from ..recurrent._model import outputs as model_outputs
 from ._optim import hyperparams, make_optimizer
 
@@ -132,9 +133,13 @@ def _terms(mask, valid, mode, dtype):
     return n.astype(dtype)
 
 
-def _split_loss(params, series, split, act, *, task, mode, steps, batch, cell):
-    """Mean loss over the real windows of a split, in batches; NaN when it has none."""
+def _split_loss(params, series, split, act, *, task, mode, steps, batch, cell, uniform=False):
+    """Mean loss over the real windows of a split, in batches; NaN when it has none.
+
+    ``uniform``: every real window has the program's full length (see ``epoch_program``).
+    """
     dtype = params["W"].dtype
+    loss_fn = model_loss_counted if uniform else model_loss
     n_batches = (split.n + batch - 1) // batch
 
     def body(carry):
@@ -144,7 +149,7 @@ def _split_loss(params, series, split, act, *, task, mode, steps, batch, cell):
         starts = lax.dynamic_slice(split.starts, (at,), (batch,))
         lengths = lax.dynamic_slice(split.lengths, (at,), (batch,))
         x, y, mask = gather(series, starts, lengths, valid, steps=steps, mode=mode)
-        value = model_loss(params, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
+        value = loss_fn(params, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
         c = _terms(mask, valid, mode, dtype)
         return i + 1, total + value * c, count + c
 
@@ -177,7 +182,7 @@ class EpochStats(NamedTuple):
     finite: jax.Array  # () bool: every loss and gradient norm was finite
 
 
-def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell):
+def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell, uniform):
     import optax  # loaded by the first training, not by `import rnnkit` (about 0.1 s)
 
     # A placeholder value for each hyperparameter: updates read the real ones from the state.
@@ -191,8 +196,13 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
         order = _shuffle(sub, train.starts.shape[0], train.n)
         n_batches = (train.n + batch - 1) // batch
 
+        # Uniform windows: the mask only marks the fillers of the last minibatch, whose terms
+        # count zero, so the recurrence needs no per-step select (measured 3% of the epoch
+        # at the default fit's shape, benchmarks/bench_epoch.py).
+        fn = model_loss_counted if uniform else model_loss
+
         def loss_fn(p, x, y, mask):
-            return model_loss(p, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
+            return fn(p, x, y, activation=act, task=task, mode=mode, mask=mask, cell=cell)
 
         # The optimizer works on ONE vector of all parameters (and its state likewise): the
         # same elementwise arithmetic as leaf by leaf, in a few operations per step instead
@@ -227,7 +237,7 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
         opt_state = jax.tree.map(lambda t, f: unravel(f) if like(t) else f, opt_state, flat_opt,
                                  is_leaf=like)
         val_loss = _split_loss(params, series, val, act, task=task, mode=mode,
-                               steps=steps, batch=val_batch, cell=cell)
+                               steps=steps, batch=val_batch, cell=cell, uniform=uniform)
         stats = EpochStats(total / jnp.maximum(count, 1), norms / jnp.maximum(i, 1).astype(dtype),
                            val_loss, i, finite)
         return (params, opt_state, key), stats
@@ -235,20 +245,25 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
     return jax.jit(epoch, compiler_options=_COMPILER_OPTIONS)
 
 
-def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell="elman"):
+def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, steps, cell="elman",
+                  uniform=False):
     """The cached jitted epoch function for these static choices.
 
     ``f(state, series, train, val, act) -> (state, EpochStats)`` with state
     (params, opt_state, key) and ``act`` the int32 activation index. Array
     shapes (rows, features, outputs, hidden, numbers of windows) are the only
     other things that trigger a new compile. ``cell`` is static: one program per cell.
+    ``uniform`` (static): every real window of both splits has ``steps`` steps (no
+    front or end padding), so the recurrence runs without holding the state; the
+    caller promises it (``_train`` passes True only for an unpadded run).
     """
     key = ("epoch", task, mode, optimizer, bool(clipping), np.dtype(dtype).name,
-           int(batch), int(val_batch), int(steps), str(cell))
+           int(batch), int(val_batch), int(steps), str(cell), bool(uniform))
     with _LOCK:
         if key not in _CACHE:
             _CACHE[key] = _build_epoch(task, mode, optimizer, bool(clipping), np.dtype(dtype),
-                                       int(batch), int(val_batch), int(steps), str(cell))
+                                       int(batch), int(val_batch), int(steps), str(cell),
+                                       bool(uniform))
         return _CACHE[key]
 
 
