@@ -138,6 +138,21 @@ def test_mask_free_program_equals_the_masked_one(frame):
     assert not _mask_free(p, cfg.replace(batch_size=128, hidden=256), None)
 
 
+def test_shuffle_order_equals_numpy_stable_argsort():
+    # The epoch's shuffle sorts the values alone and places each entry by binary search,
+    # falling back to the stable argsort on equal values; NumPy's stable argsort is the
+    # reference, with and without ties, fillers last in place.
+    from rnnkit.training._epoch import stable_order
+
+    rng = np.random.default_rng(0)
+    order = jax.jit(stable_order)
+    for n_entries, n, high in ((64, 64, 2 ** 31), (64, 50, 2 ** 31), (200, 130, 40), (7, 0, 9)):
+        bits = rng.integers(0, high, n_entries).astype(np.uint32)  # high=40: many ties
+        keyed = np.where(np.arange(n_entries) < n, bits, np.uint32(0xFFFFFFFF))
+        expected = np.argsort(keyed, kind="stable")
+        np.testing.assert_array_equal(order(bits, np.int32(n)), expected)
+
+
 def test_same_config_and_seed_is_bitwise_repeatable(frame):
     p, cfg, a = run(frame, epochs=3)
     b = train(p, cfg, progress=False)

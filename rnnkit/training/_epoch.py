@@ -170,8 +170,25 @@ def _shuffle(key, n_entries: int, n):
     pos = jnp.arange(n_entries, dtype=jnp.int32)
     draw = lambda i: jax.random.bits(jax.random.fold_in(key, i), (), jnp.uint32)
     bits = jax.vmap(draw)(pos) >> 1  # (n_entries,) below 2**31
+    return stable_order(bits, n)  # (n_entries,)
+
+
+def stable_order(bits, n):
+    """``argsort(where(pos < n, bits, 0xFFFFFFFF), stable=True)`` for bits below 2**31.
+
+    XLA's CPU sort of one uint32 array is fast, a sort carrying the positions along
+    is not (measured at 12,288 entries: 0.4 against 2.1 ms). So: sort the values alone,
+    and each real entry's place is the number of smaller values (a binary search);
+    fillers keep their places at the end. Equal values (about 3% of epochs at 12,000
+    windows) would collide: then the stable argsort itself runs.
+    """
+    pos = jnp.arange(bits.shape[0], dtype=jnp.int32)
     bits = jnp.where(pos < n, bits, jnp.full_like(bits, 0xFFFFFFFF))  # fillers sort last
-    return jnp.argsort(bits, stable=True).astype(jnp.int32)  # (n_entries,)
+    ordered = lax.sort(bits)  # (N,)
+    tie = jnp.any((ordered[1:] == ordered[:-1]) & (pos[1:] < n))
+    place = jnp.where(pos < n, jnp.searchsorted(ordered, bits, side="left").astype(jnp.int32), pos)
+    by_place = jnp.zeros_like(pos).at[place].set(pos, unique_indices=True)
+    return lax.cond(tie, lambda: jnp.argsort(bits, stable=True).astype(jnp.int32), lambda: by_place)
 
 
 class EpochStats(NamedTuple):
