@@ -6,7 +6,8 @@ best parameters, decides when to stop and reports progress. Between epochs the
 host reads five numbers and nothing else.
 
 Compile economy. The program is cached by (task, mode, optimizer name,
-clipping on/off, dtype, batch size, program window) and by array shapes
+clipping on/off, dtype, batch size, program window, mask-free or not: see
+``_mask_free``) and by array shapes
 (rows, inputs, outputs, hidden size, numbers of windows). Activation, learning
 rate, weight decay, clipping norm, seed, init scheme and recurrent scale are
 data. A sweep that also varies the window passes ``shapes`` (see
