@@ -235,7 +235,8 @@ def last_state_fast(act, xs, U, V, b, h0, mask):
     cotangent that is zero but for its last row, and the forward pass without
     gradient (validation) keeps no (T, B, H) array. Measured in the epoch program
     (benchmarks/bench_epoch.py), with the rest unchanged: 7-9% faster at
-    (B, T, I, H) = (64, 24, 3, 32), (64, 100, 3, 128) and (128, 200, 8, 256).
+    (B, T, I, H) = (64, 24, 3, 32) and (64, 100, 3, 128); slower at large B * H
+    (``LAST_STATE_MAX``).
     """
     return last_state(act, xs, U, V, b, h0, mask)
 
