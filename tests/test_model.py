@@ -12,9 +12,9 @@ from rnnkit.data._config import ACTIVATIONS, MODES, TASKS
 from tolerances import EXACT32, EXACT64, FAST_VS_AUTODIFF
 
 
-def data(seed, B=3, T=6, I=2, H=5, O=3, dtype=np.float64):
+def data(seed, B=3, T=6, I=2, H=5, O=3, dtype=np.float64, cell="elman"):
     rng = np.random.default_rng(seed)
-    p = rnnkit.init_params(jax.random.key(seed), I, H, O, scheme="orthogonal", dtype=dtype)
+    p = rnnkit.init_params(jax.random.key(seed), I, H, O, scheme="orthogonal", dtype=dtype, cell=cell)
     p = {k: jnp.asarray(np.asarray(v) + 0.1 * rng.normal(size=v.shape), dtype) for k, v in p.items()}
     xs = rng.normal(size=(B, T, I)).astype(dtype)
     mask = rng.random((B, T)) > 0.3
@@ -96,6 +96,68 @@ def test_fast_bptt_equals_autodiff_for_states(masked):
         g1, g2 = fast(p, h0, xs, c, jnp.int32(k)), plain(p, h0, xs, c, jnp.int32(k))
         for a, b in zip(jax.tree.leaves(g1), jax.tree.leaves(g2)):
             np.testing.assert_allclose(a, b, **FAST_VS_AUTODIFF, err_msg=ACTIVATIONS[k])
+
+
+@pytest.mark.parametrize("masked", [False, True])
+def test_many_to_one_shortcuts_equal_the_general_path(masked, monkeypatch):
+    # The epoch's shortcuts change only the order of sums: the last-state VJP (no (T, B, H)
+    # cotangent), x_t U as I fused multiplies, db as a product. Each against its general
+    # path (the full-states VJP, the matrix product, the reduction), and against autodiff.
+    from rnnkit.recurrent import _scan
+
+    p, xs, ys, mask = data(3, I=3)
+    args = (p, xs, ys["regression", "many-to-one"])
+
+    def value_and_grad(fn):  # a fresh program: the switches are read while tracing
+        return jax.jit(lambda p, xs, y, a: jax.value_and_grad(fn)(
+            p, xs, y, activation=a, mode="many-to-one", mask=mask if masked else None))
+    for k in range(len(ACTIVATIONS)):
+        short = value_and_grad(_model.loss)(*args, jnp.int32(k))
+        plain = value_and_grad(_model._loss_autodiff)(*args, jnp.int32(k))
+        with monkeypatch.context() as m:
+            m.setattr(_scan, "LAST_STATE_MAX", 0)
+            m.setattr(_scan, "ELEMENTWISE_INPUTS", 0)
+            m.setattr(_scan, "BIAS_BY_PRODUCT", 0)
+            general = value_and_grad(_model.loss)(*args, jnp.int32(k))
+        for other in (plain, general):
+            np.testing.assert_allclose(short[0], other[0], **FAST_VS_AUTODIFF)
+            for name in p:
+                np.testing.assert_allclose(short[1][name], other[1][name], **FAST_VS_AUTODIFF,
+                                           err_msg=f"{ACTIVATIONS[k]} {name}")
+
+
+def test_input_product_equals_the_matrix_product():
+    rng = np.random.default_rng(4)
+    from rnnkit.recurrent import _scan
+    for n_in, n_hid in ((1, 8), (3, 32), (4, 64), (5, 16), (3, 65)):
+        x = jnp.asarray(rng.normal(size=(6, n_in)))
+        U = jnp.asarray(rng.normal(size=(n_in, n_hid)))
+        np.testing.assert_allclose(_scan.input_product(x, U), np.asarray(x) @ np.asarray(U), **EXACT64)
+
+
+@pytest.mark.parametrize("cell,task,mode", [(c, t, m) for c in ("elman", "gru", "lstm")
+                                            for t, m in itertools.product(TASKS, MODES)])
+def test_loss_counted_equals_loss_when_only_filler_rows_are_masked(cell, task, mode):
+    # The trainer's mask-free program: rows either all real or all filler (the last
+    # minibatch's zero-weight entries, inputs zero). Holding the fillers' state or not
+    # changes no counted term, so value and gradient agree to rounding.
+    p, xs, ys, _ = data(5, B=5, cell=cell)
+    rows = np.array([True, True, False, True, False])
+    mask = np.repeat(rows[:, None], xs.shape[1], axis=1)  # (B, T)
+    xs = np.where(mask[:, :, None], xs, 0.0)
+
+    def value_and_grad(fn):
+        return jax.jit(lambda p: jax.value_and_grad(fn)(p, xs, ys[task, mode], activation="tanh",
+                                                        task=task, mode=mode, mask=mask, cell=cell))
+    v1, g1 = value_and_grad(_model.loss_counted)(p)
+    v2, g2 = value_and_grad(_model.loss)(p)
+    np.testing.assert_allclose(v1, v2, **EXACT64)
+    for name in p:
+        np.testing.assert_allclose(g1[name], g2[name], **EXACT64, err_msg=name)
+    # and the fillers do not count: the loss of the real rows alone
+    alone = _model.loss(p, xs[rows], ys[task, mode][rows], activation="tanh", task=task, mode=mode,
+                        cell=cell)
+    np.testing.assert_allclose(v1, alone, **EXACT64)
 
 
 def test_float32_by_default_float64_on_request():

@@ -115,6 +115,44 @@ def test_padding_window_and_counts_changes_nothing(frame, mode):
                                evaluate(plain.params, p, "test"), **PADDED32)
 
 
+def test_mask_free_program_equals_the_masked_one(frame):
+    # An unpadded run trains with the mask-free program; the same run given its own shapes
+    # (as a sweep gives them) with the masked one that sweeps share. Fillers of the last
+    # minibatch count zero either way: same history and parameters to rounding.
+    from rnnkit.training._train import _mask_free
+
+    cfg = Config(**{**BASE, "epochs": 3})
+    p = prepare(frame, cfg)
+    assert _mask_free(p, cfg, None) and not _mask_free(p, cfg, shape_plan([p]))
+    assert len(p.starts["train"]) % cfg.batch_size  # the last minibatch holds fillers
+    free = train(p, cfg, progress=False)
+    masked = train(p, cfg, shapes=shape_plan([p]), progress=False)
+    for k in free.params:
+        np.testing.assert_allclose(free.params[k], masked.params[k], **EXACT32)
+    for col in ("train_loss", "val_loss", "grad_norm"):
+        np.testing.assert_allclose(free.history[col], masked.history[col], **EXACT32)
+    # one program each, both cached
+    assert train(p, cfg, progress=False).compiles == 0
+    assert train(p, cfg, shapes=shape_plan([p]), progress=False).compiles == 0
+    # large batch x hidden keeps the masked program (measured faster there)
+    assert not _mask_free(p, cfg.replace(batch_size=128, hidden=256), None)
+
+
+def test_shuffle_order_equals_numpy_stable_argsort():
+    # The epoch's shuffle sorts the values alone and places each entry by binary search,
+    # falling back to the stable argsort on equal values; NumPy's stable argsort is the
+    # reference, with and without ties, fillers last in place.
+    from rnnkit.training._epoch import stable_order
+
+    rng = np.random.default_rng(0)
+    order = jax.jit(stable_order)
+    for n_entries, n, high in ((64, 64, 2 ** 31), (64, 50, 2 ** 31), (200, 130, 40), (7, 0, 9)):
+        bits = rng.integers(0, high, n_entries).astype(np.uint32)  # high=40: many ties
+        keyed = np.where(np.arange(n_entries) < n, bits, np.uint32(0xFFFFFFFF))
+        expected = np.argsort(keyed, kind="stable")
+        np.testing.assert_array_equal(order(bits, np.int32(n)), expected)
+
+
 def test_same_config_and_seed_is_bitwise_repeatable(frame):
     p, cfg, a = run(frame, epochs=3)
     b = train(p, cfg, progress=False)
@@ -230,6 +268,8 @@ def test_whole_sequences_with_end_padding():
                  group_column="case", hidden=8, batch_size=8, epochs=6, patience=None, lr=0.02)
     p = prepare(basic_motions(), cfg)
     assert len(set(p.lengths["val"])) > 1  # unequal lengths: the gather pads at the end
+    from rnnkit.training._train import _mask_free
+    assert not _mask_free(p, cfg, None)  # padded steps must hold the state: the masked program
     out = train(p, cfg, progress=False)
     h = out.history
     assert h.train_loss.iloc[-1] < h.train_loss.iloc[0]

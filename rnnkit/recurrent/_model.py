@@ -15,8 +15,9 @@ has no branch).
 Mask: a False step is padding; the state is held across it (h_t = h_{t-1})
 and it adds no loss term. Many-to-one uses the output at the last step.
 
-``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT)
-for Elman and through ``_gated.states_fast`` for the gated cells;
+``loss`` differentiates through ``_scan.states_fast`` (custom VJP, fast BPTT;
+``_scan.last_state_fast`` for a many-to-one loss) for Elman and through
+``_gated.states_fast`` for the gated cells;
 ``_hidden_states_autodiff`` keeps the plain autodiff scan for tests and benchmarks.
 """
 from __future__ import annotations
@@ -184,6 +185,16 @@ def _states(inp: _Inputs, act, fast: bool, cell: str = "elman"):
     return lax.switch(act, branches, args)
 
 
+def _last_state(inp: _Inputs, act):
+    """The Elman state after the last step (B, H), through ``_scan.last_state_fast``."""
+    p = inp.params
+    args = (inp.xs, p["U"], p["V"], p["b"], inp.h0, inp.mask)
+    if isinstance(act, str):
+        return _scan.last_state_fast(act, *args)
+    branches = [lambda a, name=name: _scan.last_state_fast(name, *a) for name in ACTIVATIONS]
+    return lax.switch(act, branches, args)
+
+
 def _project_out(h, p):
     """o = h W + c over the leading axes of h (..., H) -> (..., O)."""
     o = _scan.times(h, p["W"]) if h.ndim == 3 else h @ p["W"]
@@ -295,21 +306,28 @@ def _mean_over(terms, w):
     return total / jnp.maximum(jnp.sum(w), 1).astype(terms.dtype)
 
 
-def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast, cell="elman"):
+def _loss_impl(params, xs, ys, activation, task, mode, mask, h0, fast, cell="elman", hold=True):
     _check_choice("task", task, TASKS)
     _check_choice("mode", mode, MODES)
     act = _resolve_activation(activation)
     inp = _prepare(params, xs, mask, h0, cell)
     y = _prepare_targets(ys, inp, task, mode)
-    hs = _states(inp, act, fast, cell)  # (T, B, H)
+    counted = inp  # its mask says which terms count
+    if not hold:
+        inp = inp._replace(mask=None)  # the recurrence runs every step of every row
     n_out = inp.params["W"].shape[1]
     if mode == "many-to-many":
+        hs = _states(inp, act, fast, cell)  # (T, B, H)
         o = _project_out(hs, inp.params)  # (T, B, O)
-        w = None if inp.mask is None else inp.mask[:, :, 0]  # (T, B)
+        w = None if counted.mask is None else counted.mask[:, :, 0]  # (T, B)
     else:
-        o = _project_out(hs[-1], inp.params)  # (B, O): the last step; padding held the state
+        # The last step; padding held the state. Elman's fast path may carry only that state.
+        B, H = inp.h0.shape
+        by_last = fast and cell == "elman" and B * H <= _scan.LAST_STATE_MAX
+        last = _last_state(inp, act) if by_last else _states(inp, act, fast, cell)[-1]
+        o = _project_out(last, inp.params)  # (B, O)
         # A sequence counts when any of its steps is real (all-padding rows fill batches).
-        w = None if inp.mask is None else jnp.any(inp.mask[:, :, 0], axis=0)  # (B,)
+        w = None if counted.mask is None else jnp.any(counted.mask[:, :, 0], axis=0)  # (B,)
     if task == "classification":
         _check_labels(y, w, n_out)
     if w is not None:
@@ -352,6 +370,19 @@ def loss(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-
       >>> g = jax.grad(loss)(params, xs, ys, activation="tanh", mode="many-to-one")
     """
     return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, True, cell)
+
+
+def loss_counted(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",
+                 mask=None, h0=None, cell="elman"):
+    """``loss`` whose mask only says which terms count: every step updates the state.
+
+    For batches whose only False mask entries are whole filler rows (every window of
+    full length, no front padding): there it equals ``loss`` to rounding, since a
+    filler's terms count zero whatever its states, and the recurrence runs without
+    the mask's per-step select (the trainer's mask-free program, ``_epoch``).
+    Args and Returns: as ``loss``.
+    """
+    return _loss_impl(params, xs, ys, activation, task, mode, mask, h0, True, cell, hold=False)
 
 
 def _loss_autodiff(params, xs, ys, *, activation="tanh", task="regression", mode="many-to-many",

@@ -47,6 +47,41 @@ def times(a, w):
     return (_rows(a) @ w).reshape(a.shape[:-1] + (w.shape[-1],))
 
 
+# The input product x_t U as a sum of I broadcast multiplies (fused with the activation,
+# no matrix-product call) when I and H are at most these. Measured in the epoch program
+# (benchmarks/bench_epoch.py): (B, T, I, H) = (64, 24, 3, 32) 9% faster; (64, 100, 3, 128)
+# no different; (128, 200, 8, 256) 4% slower, hence the limits.
+ELEMENTWISE_INPUTS = 4
+ELEMENTWISE_HIDDEN = 64
+
+
+def input_product(x, U):
+    """x (B, I) times U (I, H) -> (B, H); for few inputs and units as I fused multiplies.
+
+    Equal to ``x @ U`` up to float rounding (the order of the I-term sum may differ).
+    """
+    n_in, n_hid = U.shape
+    if n_in > ELEMENTWISE_INPUTS or n_hid > ELEMENTWISE_HIDDEN:
+        return x @ U
+    total = x[:, 0:1] * U[0][None, :]
+    for i in range(1, n_in):
+        total = total + x[:, i:i + 1] * U[i][None, :]
+    return total  # (B, H)
+
+
+def _step_fn(act: str, U, V, b, masked: bool):
+    """One forward step h_{t-1} -> h_t (a padded step holds h when ``masked``)."""
+    phi = get_activation(act).value
+    if not masked:
+        def step(h, x):
+            return phi(input_product(x, U) + h @ V + b[None, :])  # (B, H)
+        return step
+
+    def step_masked(h, x, m):
+        return jnp.where(m, phi(input_product(x, U) + h @ V + b[None, :]), h)  # padded rows hold
+    return step_masked
+
+
 def scan_states(act: str, xs, U, V, b, h0, mask):
     """Run the recurrence h_t = phi(x_t U + h_{t-1} V + b) over time.
 
@@ -64,20 +99,33 @@ def scan_states(act: str, xs, U, V, b, h0, mask):
     Returns:
       hs (T, B, H): the state after every step.
     """
-    phi = get_activation(act).value
     if mask is None:
         # Branch-free body; the carry is one array.
+        f = _step_fn(act, U, V, b, False)
+
         def step(h, x):
-            h = phi(x @ U + h @ V + b[None, :])  # (B, H)
+            h = f(h, x)
             return h, h
         _, hs = lax.scan(step, h0, xs)
     else:
+        f = _step_fn(act, U, V, b, True)
+
         def step(h, inp):
-            x, m = inp
-            h = jnp.where(m, phi(x @ U + h @ V + b[None, :]), h)  # (B, H); padded rows hold
+            h = f(h, *inp)
             return h, h
         _, hs = lax.scan(step, h0, (xs, mask))
     return hs
+
+
+def last_state(act: str, xs, U, V, b, h0, mask):
+    """The state after the last step only, (B, H): the same loop keeping no (T, B, H) array."""
+    if mask is None:
+        f = _step_fn(act, U, V, b, False)
+        h, _ = lax.scan(lambda h, x: (f(h, x), None), h0, xs)
+    else:
+        f = _step_fn(act, U, V, b, True)
+        h, _ = lax.scan(lambda h, inp: (f(h, *inp), None), h0, (xs, mask))
+    return h
 
 
 def states_autodiff(act, xs, U, V, b, h0, mask):
@@ -99,8 +147,28 @@ def _fast_fwd(act, xs, U, V, b, h0, mask):
     return hs, (xs, U, V, h0, hs, mask)
 
 
-def _fast_bwd(act, res, g):
-    """Reverse pass. g = dL/dh_t from the outputs, (T, B, H)."""
+# dL/db = sum of dA over all T*B rows: as the product ones (1, T*B) x dA (T*B, H) when
+# T*B*H is at most this, else a reduction. Measured in the epoch program at (64, 24, 3, 32):
+# the reduction took about 3% of the epoch more than the product; at (128, 200, 8, 256) the
+# two were within noise (benchmarks/bench_epoch.py).
+BIAS_BY_PRODUCT = 2 ** 18
+
+
+def _bias_grad(da_next, da0):
+    """sum over t, b of dA: da_next (T, B, H) (rows dA_1 .. dA_{T-1}, then zeros), da0 (B, H)."""
+    if da_next.size <= BIAS_BY_PRODUCT:
+        ones = jnp.ones((1, da_next.shape[0] * da_next.shape[1]), da_next.dtype)
+        return (ones @ _rows(da_next))[0] + jnp.sum(da0, axis=0)  # (H,)
+    return jnp.sum(da_next, axis=(0, 1)) + jnp.sum(da0, axis=0)  # (H,)
+
+
+def _reverse(act, res, g, dh_last):
+    """The backward pass of the recurrence: (dxs, dU, dV, db, dh0).
+
+    g = dL/dh_t from the outputs at every step, (T, B, H), or None when only the last
+    state reaches the loss; then dh_last (B, H) is dL/dh_{T-1} and the loop reads no
+    (T, B, H) cotangent (a many-to-one loss's is zero but for its last row).
+    """
     xs, U, V, h0, hs, mask = res
     # 1. The reverse loop. phi'(a_t) is taken from h_t inside the body, where XLA fuses it
     #    with the multiply: measured faster than a separate (T, B, H) pass before the loop.
@@ -112,33 +180,78 @@ def _fast_bwd(act, res, g):
     dphi = get_activation(act).grad_from_output
     Vt = V.T
     zeros = jnp.zeros_like(h0)
-    if mask is None:
-        def step(carry, inp):
-            dh, da_later = carry  # dL/dh_t through the recurrence; dA_{t+1}
-            g_t, h_t = inp
-            da = (g_t + dh) * dphi(h_t)  # (B, H) dL/da_t
+    dh_init = zeros if dh_last is None else dh_last
+    # Inputs of the loop: (g_t, h_t, m_t), any of g and m absent.
+    inputs = tuple(a for a in (g, hs, mask) if a is not None)
+    with_g, with_mask = g is not None, mask is not None
+
+    def step(carry, inp):
+        dh, da_later = carry  # dL/dh_t through the recurrence; dA_{t+1}
+        g_t = inp[0] if with_g else None
+        h_t = inp[1] if with_g else inp[0]
+        gh = dh if g_t is None else g_t + dh  # (B, H) dL/dh_t
+        if not with_mask:
+            da = gh * dphi(h_t)  # (B, H) dL/da_t
             return (da @ Vt, da), da_later  # dA_t V^T = dL/dh_{t-1} through the recurrence
-        (dh0, da0), da_next = lax.scan(step, (zeros, zeros), (g, hs), reverse=True)
-    else:
-        def step(carry, inp):
-            dh, da_later = carry
-            g_t, h_t, m_t = inp
-            gh = g_t + dh  # (B, H) dL/dh_t
-            zero = jnp.zeros_like(gh)
-            da = jnp.where(m_t, gh * dphi(h_t), zero)  # a padded step has no pre-activation
-            # ... and passes dL/dh_t unchanged to h_{t-1}, since h_t = h_{t-1} there
-            return (da @ Vt + jnp.where(m_t, zero, gh), da), da_later
-        (dh0, da0), da_next = lax.scan(step, (zeros, zeros), (g, hs, mask), reverse=True)
+        m_t = inp[-1]
+        zero = jnp.zeros_like(gh)
+        da = jnp.where(m_t, gh * dphi(h_t), zero)  # a padded step has no pre-activation
+        # ... and passes dL/dh_t unchanged to h_{t-1}, since h_t = h_{t-1} there
+        return (da @ Vt + jnp.where(m_t, zero, gh), da), da_later
+
+    (dh0, da0), da_next = lax.scan(step, (dh_init, zeros), inputs, reverse=True)
     # 2. The parameter gradients as single products over all T*B rows, plus the t = 0 term.
     dV = _tb_product(hs, da_next) + h0.T @ da0  # (H, H): sum_t h_{t-1}^T dA_t
     xs_next = jnp.concatenate([xs[1:], jnp.zeros_like(xs[:1])], axis=0)  # x_{t+1}; small, I << H
     dU = _tb_product(xs_next, da_next) + xs[0].T @ da0  # (I, H)
-    db = jnp.sum(da_next, axis=(0, 1)) + jnp.sum(da0, axis=0)  # (H,)
+    db = _bias_grad(da_next, da0)  # (H,)
     dxs = jnp.concatenate([(da0 @ U.T)[None], times(da_next[:-1], U.T)], axis=0)  # (T, B, I); dropped by XLA when unused
-    return dxs, dU, dV, db, dh0, None
+    return dxs, dU, dV, db, dh0
+
+
+def _fast_bwd(act, res, g):
+    """Reverse pass. g = dL/dh_t from the outputs, (T, B, H)."""
+    return _reverse(act, res, g, None) + (None,)
 
 
 states_fast.defvjp(_fast_fwd, _fast_bwd)
+
+
+# A many-to-one loss takes ``last_state_fast`` when B * H is at most this, else
+# ``states_fast(...)[-1]``. Measured in the epoch program (benchmarks/bench_epoch.py):
+# (B, T, I, H) = (64, 24, 3, 32) and (64, 100, 3, 128) faster with it, (128, 200, 8, 256)
+# 7% slower (as when it was first tried: XLA splits the reverse loop's elementwise
+# fusion over threads by the bytes it touches, and without the (T, B, H) cotangent
+# that fusion touches fewer).
+LAST_STATE_MAX = 2 ** 14
+
+
+@partial(jax.custom_vjp, nondiff_argnums=(0,))
+def last_state_fast(act, xs, U, V, b, h0, mask):
+    """The last state (B, H) (a many-to-one loss's), with the fast backward pass.
+
+    Same value as ``states_fast(...)[-1]`` and the same gradient to rounding, but the
+    backward pass starts from dL/dh_{T-1} (B, H) instead of reading a (T, B, H)
+    cotangent that is zero but for its last row, and the forward pass without
+    gradient (validation) keeps no (T, B, H) array. Measured in the epoch program
+    (benchmarks/bench_epoch.py), with the rest unchanged: 7-9% faster at
+    (B, T, I, H) = (64, 24, 3, 32) and (64, 100, 3, 128); slower at large B * H
+    (``LAST_STATE_MAX``).
+    """
+    return last_state(act, xs, U, V, b, h0, mask)
+
+
+def _last_fwd(act, xs, U, V, b, h0, mask):
+    hs = scan_states(act, xs, U, V, b, h0, mask)  # (T, B, H)
+    return hs[-1], (xs, U, V, h0, hs, mask)
+
+
+def _last_bwd(act, res, g):
+    """Reverse pass. g = dL/dh_{T-1}, (B, H)."""
+    return _reverse(act, res, None, g) + (None,)
+
+
+last_state_fast.defvjp(_last_fwd, _last_bwd)
 
 
 def scan_cell(cell: str, act: str, xs, params, h0, mask, eps=None, with_gates: bool = False):

@@ -6,7 +6,8 @@ best parameters, decides when to stop and reports progress. Between epochs the
 host reads five numbers and nothing else.
 
 Compile economy. The program is cached by (task, mode, optimizer name,
-clipping on/off, dtype, batch size, program window) and by array shapes
+clipping on/off, dtype, batch size, program window, mask-free or not: see
+``_mask_free``) and by array shapes
 (rows, inputs, outputs, hidden size, numbers of windows). Activation, learning
 rate, weight decay, clipping norm, seed, init scheme and recurrent scale are
 data. A sweep that also varies the window passes ``shapes`` (see
@@ -29,6 +30,11 @@ from ..data._config import ACTIVATIONS, INITS, Config
 from ._optim import hyperparams, program_key
 
 SHAPE_KEYS = ("window", "n_train", "n_val", "rows")
+# An unpadded run whose batch x hidden is at most this trains with the mask-free epoch
+# program (``_epoch.epoch_program(uniform=True)``). Measured (benchmarks/bench_epoch.py):
+# 5% faster per epoch at (B, T, I, H) = (64, 24, 3, 32), 2% at (64, 100, 3, 128), but 15%
+# slower at (128, 200, 8, 256), where XLA runs the masked loops' fusions on two threads.
+MASK_FREE_MAX = 2 ** 14
 HISTORY_COLUMNS = ("epoch", "train_loss", "val_loss", "grad_norm", "lr", "seconds")
 
 
@@ -244,7 +250,7 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     has_val = len(prepared.starts["val"]) > 0
     with precision(config.dtype):
         # 1. data on the device, initial state, the (cached) epoch program
-        state, run = _setup(prepared, config, dims)
+        state, run = _setup(prepared, config, dims, uniform=_mask_free(prepared, config, shapes))
         # classification may watch validation accuracy (ties broken by the loss)
         watch_accuracy = config.watch == "metric" and config.task == "classification" and has_val
         y_val = prepared.targets[prepared.target_rows("val")] if watch_accuracy else None
@@ -303,8 +309,24 @@ class _Run(NamedTuple):
     act: jax.Array  # () int32 activation index
 
 
-def _setup(prepared, config: Config, dims: Dict[str, int]):
-    """The initial state (params, opt_state, key) and the _Run for this call."""
+def _mask_free(prepared, config: Config, shapes) -> bool:
+    """Whether ``train`` runs the mask-free epoch program: an unpadded run (no ``shapes``)
+    whose training and validation windows all have full length, batch x hidden at most
+    MASK_FREE_MAX."""
+    if shapes is not None or config.batch_size * config.hidden > MASK_FREE_MAX:
+        return False
+    lengths = prepared.lengths or {}
+    return all(lengths.get(s) is None or bool(np.all(np.asarray(lengths[s]) == prepared.window))
+               for s in ("train", "val"))
+
+
+def _setup(prepared, config: Config, dims: Dict[str, int], uniform: bool = False):
+    """The initial state (params, opt_state, key) and the _Run for this call.
+
+    ``uniform``: the run is not padded (no ``shapes``) and every window has full length,
+    so the epoch program may run the recurrence without holding the state. Runs given
+    ``shapes`` (sweeps, backtests) keep the masked program, which all of them share.
+    """
     dtype = np.dtype(config.dtype)
     batch = config.batch_size
     val_batch = min(_epoch.eval_batch(dims["window"], config.hidden), _round_up(dims["n_val"], 16))
@@ -314,7 +336,8 @@ def _setup(prepared, config: Config, dims: Dict[str, int]):
     name, clipping = program_key(config.optimizer, config.clip)
     program = _epoch.epoch_program(task=config.task, mode=config.mode, optimizer=name,
                                    clipping=clipping, dtype=dtype, batch=batch,
-                                   val_batch=val_batch, steps=dims["window"], cell=config.cell)
+                                   val_batch=val_batch, steps=dims["window"], cell=config.cell,
+                                   uniform=uniform)
     return state, _Run(program, _series(prepared, dtype, dims),
                        *jax.device_put((train_split, val_split, activation_index(config.activation))))
 
