@@ -256,10 +256,12 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         y_val = prepared.targets[prepared.target_rows("val")] if watch_accuracy else None
         best = ((math.inf, math.inf) if watch_accuracy else math.inf, 0, state[0])  # (watched, epoch, params)
         rows, status = [], "ok"
-        from tqdm.auto import tqdm  # on first use: it loads asyncio, which `import rnnkit` need not
+        if progress:
+            from tqdm.auto import tqdm  # on first use: it loads asyncio, which `import rnnkit` need not
 
-        bar = tqdm(total=config.epochs, desc="training", unit="epoch", disable=not progress,
-                   leave=False)
+            bar = tqdm(total=config.epochs, desc="training", unit="epoch", leave=False)
+        else:
+            bar = _NoBar()
         try:
             for epoch in range(1, config.epochs + 1):
                 # 2. one epoch = one call of the compiled program, one host sync
@@ -290,6 +292,19 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     return TrainOutcome(params, history, status, int(best[1]),
                         _epoch.thread_compile_count() - compiles0, time.perf_counter() - t0,
                         "val_accuracy" if watch_accuracy else ("val_loss" if has_val else "train_loss"))
+
+
+class _NoBar:
+    """What ``train`` asks of a progress bar, doing nothing (progress=False imports no tqdm)."""
+
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def set_postfix(self, **values) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
 
 
 def _accuracy(params, prepared, shapes, y_val) -> float:
