@@ -150,9 +150,21 @@ def fresh_compiles():
     before = getattr(_FRESH, "on", False)
     _FRESH.on = True
     try:
-        yield
+        with _no_store_writes():
+            yield
     finally:
         _FRESH.on = before
+
+
+def _no_store_writes():
+    """This thread's compiles skip jax's store write before jax serialises the program
+    (jax serialises first and asks the store after: work our store would only refuse)."""
+    try:
+        from jax._src import config as jax_config
+
+        return jax_config.persistent_cache_min_compile_time_secs(float("inf"))
+    except (ImportError, AttributeError, TypeError):
+        return contextlib.nullcontext()
 
 
 def _users_own_cache() -> bool:
