@@ -63,7 +63,8 @@ def _whole(folder):
     return sorted(Path(folder).glob("whole-*-rnnkit"))
 
 
-def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_path):
+def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_path, monkeypatch):
+    monkeypatch.setenv("RNNKIT_WHOLE_PROGRAMS", "1")  # whole programs on disk: asked for (_stored)
     cache = tmp_path / "programs"
     first = _probe(cache)
     assert first["folder"] == str(cache)
@@ -102,6 +103,16 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
     kept_by_jax = [f for f in _entries(cache) if not f.name.startswith("whole-")]
     store = _cache.CheckedFiles(cache)
     assert all(store.get(f.name[:-len("-rnnkit")]) is not None for f in kept_by_jax)
+
+
+def test_by_default_a_second_process_loads_through_jax_entries(tmp_path, monkeypatch):
+    monkeypatch.delenv("RNNKIT_WHOLE_PROGRAMS", raising=False)
+    cache = tmp_path / "programs"
+    first = _probe(cache)
+    assert first["whole"]["written"] == 0 and first["misses"] >= 2  # at least epoch and init
+    second = _probe(cache)
+    assert second["hits"] >= 2 and second["whole"]["loaded"] == 0 and not _whole(cache)
+    assert second["val_loss"] == first["val_loss"] and second["V"] == first["V"]
 
 
 def test_a_deleted_folder_is_made_again_and_off_writes_nothing(tmp_path):

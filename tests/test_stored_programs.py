@@ -14,7 +14,8 @@ from rnnkit.training import _cache, _stored
 
 
 @pytest.fixture
-def folder(tmp_path):
+def folder(tmp_path, monkeypatch):
+    monkeypatch.setenv(_stored.ENV, "1")  # kept on disk only when asked (see _stored.on_disk)
     before = _cache.cache_dir()
     rnnkit.compilation_cache(tmp_path / "programs")
     yield tmp_path / "programs"
