@@ -149,35 +149,6 @@ def fitted_baselines(prepared) -> dict:
     return {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
 
 
-class _Aside:
-    """``fn()`` run in a thread of its own; ``result()`` waits and re-raises what it raised.
-
-    fit() fits the baselines (numpy, one BLAS thread) while the network trains:
-    the training programs leave the interpreter free and seldom fill both cores.
-    """
-
-    def __init__(self, fn):
-        self._box: dict = {}
-
-        def work():
-            try:
-                self._box["value"] = fn()
-            except BaseException as e:  # noqa: BLE001 - re-raised in the caller's thread
-                self._box["error"] = e
-
-        self._thread = threading.Thread(target=work, name="rnnkit-aside", daemon=True)
-        self._thread.start()
-
-    def join(self) -> None:
-        self._thread.join()
-
-    def result(self):
-        self._thread.join()
-        if "error" in self._box:
-            raise self._box["error"]
-        return self._box["value"]
-
-
 def score_all(prepared, actual: np.ndarray, outputs: dict, fitted: Optional[dict] = None):
     """``score`` plus (metrics_by_lead, {model: half widths (C, L, O)}, notes).
 
@@ -506,14 +477,9 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
     """
     cfg = resolve_config(config)
     prepared = prepare(df, cfg)
-    baselines = _Aside(lambda: fitted_baselines(prepared))  # while the network trains
-    try:
-        outcome = train(prepared, prepared.config, shapes=shapes, progress=progress, stop=stop,
-                        on_epoch=on_epoch)
-    except BaseException:
-        baselines.join()  # a failed or interrupted training leaves no thread behind
-        raise
-    fitted = baselines.result()
+    outcome = train(prepared, prepared.config, shapes=shapes, progress=progress, stop=stop,
+                    on_epoch=on_epoch)
+    fitted = fitted_baselines(prepared)
     actual = frame_actuals(df, prepared)
     outputs = {s: network_predictions(outcome.params, prepared, s, shapes)
                for s in SCORED if len(prepared.starts[s])}
