@@ -81,6 +81,7 @@ def child_fit(smoke: bool) -> dict:
             "training_seconds": float(res.history["seconds"].sum()),
             "cache_hits": events.get("/jax/compilation_cache/cache_hits", 0),
             "cache_misses": events.get("/jax/compilation_cache/cache_misses", 0),
+            "whole": rnnkit.training._stored.counts(),
             "compile": clock.summary()}
 
 
@@ -272,7 +273,8 @@ def report(r: dict) -> None:
           f"{r['fit_filled_seconds']:.2f} s -> {r['fit_empty_over_filled']:.2f}x; CPU "
           f"{min(x['cpu_seconds'] for x in e):.2f} s / {min(x['cpu_seconds'] for x in f):.2f} s "
           f"(training epochs alone {min(x['training_seconds'] for x in f):.2f} s; filled: "
-          f"{f[0]['cache_hits']} programs loaded, {f[0]['cache_misses']} written; compile phases "
+          f"{f[0]['whole']['loaded']} programs loaded whole, {f[0]['whole']['compiled']} compiled; "
+          f"jax's entries: {f[0]['cache_hits']} loaded, {f[0]['cache_misses']} missed; compile phases "
           f"empty {e[0]['compile']['by_phase']} filled {f[0]['compile']['by_phase']})")
     print(f"loss surface {s['points']} points ({s['windows']} windows x {s['steps']} steps, H = "
           f"{s['hidden']}): cold loop {s['cold']['loop']:.2f} s / batched {s['cold']['batched']:.2f} s "

@@ -14,5 +14,11 @@ os.environ["RNNKIT_CACHE_DIR"] = _PROGRAMS
 
 import jax  # noqa: E402
 
+import rnnkit  # noqa: E402
+
+# pytest imported rnnkit before this file (the SmallPartWarning filter in pyproject.toml
+# names a class of it), so rnnkit chose its folder before the line above: move it here.
+rnnkit.compilation_cache(_PROGRAMS)
+
 jax.config.update("jax_enable_x64", True)
 jax.config.update("jax_numpy_rank_promotion", "raise")

@@ -2,8 +2,11 @@
 
 The cross-process checks run fresh Python processes with their own cache
 folder (never the user's; tests/conftest.py gives the session its own folder).
-"A program was loaded, not compiled" is read from jax's own monitoring events
-(/jax/compilation_cache/cache_hits and cache_misses, jax/_src/compiler.py).
+Two kinds of entries share the folder: rnnkit's training programs kept whole
+(rnnkit/training/_stored.py, "whole-*": neither traced nor lowered again,
+counted by ``_stored.counts()``) and jax's entries for every other program
+("A program was loaded, not compiled" read from jax's own monitoring events
+/jax/compilation_cache/cache_hits and cache_misses, jax/_src/compiler.py).
 """
 import json
 import os
@@ -34,6 +37,7 @@ PROBE = textwrap.dedent("""
     res = rnnkit.fit(df, cfg, progress=False)
     print(json.dumps({"hits": events.get("/jax/compilation_cache/cache_hits", 0),
                       "misses": events.get("/jax/compilation_cache/cache_misses", 0),
+                      "whole": rnnkit.training._stored.counts(),
                       "folder": str(rnnkit.training._cache.cache_dir()),
                       "val_loss": res.history["val_loss"].tolist(),
                       "V": res.params["V"].tolist()}))
@@ -55,24 +59,28 @@ def _entries(folder):
     return sorted(Path(folder).glob("*-rnnkit"))
 
 
-def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_path):
+def _whole(folder):
+    return sorted(Path(folder).glob("whole-*-rnnkit"))
+
+
+def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_path, monkeypatch):
+    monkeypatch.setenv("RNNKIT_WHOLE_PROGRAMS", "1")  # whole programs on disk: asked for (_stored)
     cache = tmp_path / "programs"
     first = _probe(cache)
     assert first["folder"] == str(cache)
-    assert first["hits"] == 0 and first["misses"] >= 2  # at least the epoch and the init program
-    files = _entries(cache)
-    assert len(files) == first["misses"]
+    # the init, epoch and outputs programs: compiled afresh and kept whole
+    assert first["whole"]["loaded"] == 0 and first["whole"]["compiled"] >= 3
+    assert first["whole"]["written"] == first["whole"]["compiled"] == len(_whole(cache))
 
-    # Every stored program is loaded, not compiled. (A program that compiled just under jax's
-    # time threshold in the first process may cross it in a busier second one and be written
-    # then: more writes are allowed, fewer loads are not.)
+    # A second process loads every kept program: nothing is traced, lowered or compiled.
     second = _probe(cache)
-    assert second["hits"] == len(files)
+    assert second["whole"] == {"loaded": len(_whole(cache)), "compiled": 0, "written": 0}
+    assert second["misses"] == 0  # nor does any other program miss jax's entries
     assert second["val_loss"] == first["val_loss"] and second["V"] == first["V"]
-    files = sorted(_entries(cache), key=lambda f: -f.stat().st_size)  # the slowest to compile first
+    files = sorted(_whole(cache), key=lambda f: -f.stat().st_size)
 
     # Damage: one entry cut short, one with bytes changed in the middle, one emptied. With
-    # warnings as errors, a warning from jax's cache would fail the fit: none may come.
+    # warnings as errors, a warning would fail the fit: none may come.
     for f, how in zip(files, ("truncate", "garble", "empty")):
         data = bytearray(f.read_bytes())
         if how == "truncate":
@@ -85,12 +93,26 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
         f.write_bytes(bytes(data))
     damaged = min(len(files), 3)
     third = _probe(cache, "-W", "error")
-    assert third["hits"] == len(files) - damaged and third["misses"] >= damaged
+    assert third["whole"]["loaded"] == len(files) - damaged
+    assert third["whole"]["compiled"] == third["whole"]["written"] == damaged
     assert third["val_loss"] == first["val_loss"] and third["V"] == first["V"]
     # each damaged entry was replaced by a whole one, which the next process loads
+    assert _probe(cache)["whole"]["loaded"] == len(files)
+
+    # Programs that are not kept whole still go through jax's entries (same folder).
+    kept_by_jax = [f for f in _entries(cache) if not f.name.startswith("whole-")]
     store = _cache.CheckedFiles(cache)
-    assert all(store.get(f.name[:-len("-rnnkit")]) is not None for f in files)
-    assert _probe(cache)["hits"] >= len(files)
+    assert all(store.get(f.name[:-len("-rnnkit")]) is not None for f in kept_by_jax)
+
+
+def test_by_default_a_second_process_loads_through_jax_entries(tmp_path, monkeypatch):
+    monkeypatch.delenv("RNNKIT_WHOLE_PROGRAMS", raising=False)
+    cache = tmp_path / "programs"
+    first = _probe(cache)
+    assert first["whole"]["written"] == 0 and first["misses"] >= 2  # at least epoch and init
+    second = _probe(cache)
+    assert second["hits"] >= 2 and second["whole"]["loaded"] == 0 and not _whole(cache)
+    assert second["val_loss"] == first["val_loss"] and second["V"] == first["V"]
 
 
 def test_a_deleted_folder_is_made_again_and_off_writes_nothing(tmp_path):

@@ -144,13 +144,21 @@ def score(prepared, actual: np.ndarray, outputs: dict):
     return metrics, matrices
 
 
-def score_all(prepared, actual: np.ndarray, outputs: dict):
-    """``score`` plus (metrics_by_lead, {model: half widths (C, L, O)}, notes)."""
+def fitted_baselines(prepared) -> dict:
+    """split -> the baselines fitted on every part before it (test: train + val)."""
+    return {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
+
+
+def score_all(prepared, actual: np.ndarray, outputs: dict, fitted: Optional[dict] = None):
+    """``score`` plus (metrics_by_lead, {model: half widths (C, L, O)}, notes).
+
+    ``fitted``: ``fitted_baselines(prepared)`` when it was computed already.
+    """
     regression = prepared.classes is None
     names = REGRESSION_METRICS if regression else CLASSIFICATION_METRICS
     scale = prepared_mase_scale(prepared) if regression else None
-    # baselines fitted on every part before the scored one (test: train + val)
-    fitted = {split: fit_baselines(prepared, parts=parts_before(split)) for split in SCORED}
+    if fitted is None:
+        fitted = fitted_baselines(prepared)
     table = {"rnn": {}}
     lead_table = {}
     matrices = {}
@@ -471,10 +479,11 @@ def fit(df: pd.DataFrame, config=None, *, progress: bool = True, stop=None, on_e
     prepared = prepare(df, cfg)
     outcome = train(prepared, prepared.config, shapes=shapes, progress=progress, stop=stop,
                     on_epoch=on_epoch)
+    fitted = fitted_baselines(prepared)
     actual = frame_actuals(df, prepared)
     outputs = {s: network_predictions(outcome.params, prepared, s, shapes)
                for s in SCORED if len(prepared.starts[s])}
-    metrics, matrices, by_lead_frame, widths, notes = score_all(prepared, actual, outputs)
+    metrics, matrices, by_lead_frame, widths, notes = score_all(prepared, actual, outputs, fitted)
     notes = prepared.notes + notes + extrapolation_note(prepared) + fit_notes(metrics, prepared)
     return FitResult(params=outcome.params, spec=spec_of(prepared, df.index.name),
                      metrics_by_lead=by_lead_frame, interval_widths=widths.get("rnn"), notes=notes,

@@ -22,7 +22,6 @@ The loss surfaces (Li et al. 2018) are in ``_surface.py`` and re-exported here.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import partial
 from typing import Callable, Optional
 
 import jax
@@ -30,6 +29,8 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 from jax import lax
+
+from ..training._stored import stored_jit
 
 from ..recurrent._cells import GATE_BLOCKS, LOGISTIC_GATES, cell_of, get_activation
 from ..recurrent._scan import scan_cell
@@ -110,7 +111,7 @@ def example_losses(params, xs, ys, mask, eps, act: str, task: str, mode: str, ce
     return jnp.sum(terms * w, axis=1) / jnp.maximum(jnp.sum(w, axis=1), jnp.ones((), terms.dtype))
 
 
-@partial(jax.jit, static_argnames=("act", "task", "mode", "cell"))
+@stored_jit(static_argnames=("act", "task", "mode", "cell"))
 def _state_gradients(params, xs, ys, mask, *, act, task, mode, cell="elman"):
     """dL_i/dh_k for every window i and step k: (B, T, H)."""
     eps = jnp.zeros(xs.shape[:2] + (params["V"].shape[0],), params["V"].dtype)  # (B, T, H)
@@ -131,14 +132,20 @@ def gradient_through_time(params, xs, ys, mask, *, activation: str, task: str, m
       (T,) float64: mean over windows (whose step k is real) of ||dL_i/dh_k||;
       the last entry is the last step. NaN at a step no window reaches.
     """
-    xs = jnp.asarray(xs)
-    mask = np.ones(xs.shape[:2], bool) if mask is None else np.asarray(mask, bool)
-    g = _state_gradients(params, xs, jnp.asarray(ys), jnp.asarray(mask), act=activation,
+    mask = np.ones(np.shape(xs)[:2], bool) if mask is None else np.asarray(mask, bool)
+    g = _state_gradients(params, xs, ys, mask, act=activation,
                          task=task, mode=mode, cell=cell)  # (B, T, H)
     norms = np.linalg.norm(np.asarray(g, np.float64), axis=-1)  # (B, T)
     count = mask.sum(axis=0)  # (T,)
     total = np.where(mask, norms, 0.0).sum(axis=0)
     return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+@stored_jit(static_argnames=("act", "cell"))
+def _window_states(params, xs, mask, *, act, cell="elman"):
+    """The states of a few windows (B, T, H), as one program."""
+    eps = jnp.zeros(xs.shape[:2] + (params["V"].shape[0],), params["V"].dtype)
+    return perturbed_states(params, xs, mask, eps, act, cell)
 
 
 def saturated(h, activation: str):
@@ -157,7 +164,7 @@ def saturated(h, activation: str):
     return h != h  # linear: never saturated (all False unless NaN), same type as h
 
 
-@partial(jax.jit, static_argnames=("act", "cell"))
+@stored_jit(static_argnames=("act", "cell"))
 def _chunk_summary(params, xs, mask, *, act, cell="elman"):
     """For one chunk of windows: last states (B, H), saturated counts (H,), real steps (),
     and the gate counts: near 0 (G,), near 1 (G,), sums (G,) of each logistic gate over
@@ -318,7 +325,7 @@ def _all_windows(params, prepared, split, act, cell="elman"):
         x[:k] = x_all[at:at + k]
         m = np.zeros((chunk, T), bool)
         m[:k] = True if m_all is None else m_all[at:at + k]
-        h_last, hit, real, lo, hi, sm, fg, ps = _chunk_summary(params, jnp.asarray(x), jnp.asarray(m),
+        h_last, hit, real, lo, hi, sm, fg, ps = _chunk_summary(params, x, m,
                                                                act=act, cell=cell)
         last.append(np.asarray(h_last)[:k])
         hits += np.asarray(hit, np.float64)
@@ -356,7 +363,7 @@ def diagnose(params, prepared, *, split: Optional[str] = None) -> Diagnostics:
     cell = cell_of(params)
     dtype = np.dtype(cfg.dtype)
     with precision(cfg.dtype):
-        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in params.items()}
+        p = {k: np.asarray(v, dtype) for k, v in params.items()}
         # A batch spread evenly over the split, so that it represents all of it.
         idx = np.unique(np.linspace(0, n - 1, min(n, GRADIENT_BATCH)).round().astype(np.int64))
         x, y, m = _numpy_batch(prepared, split, idx)
@@ -376,8 +383,7 @@ def diagnose(params, prepared, *, split: Optional[str] = None) -> Diagnostics:
                                  f"window(s), numbered 0..{count - 1}")
             xi, _, mi = _numpy_batch(prepared, sp, np.array([i]))
             with precision(cfg.dtype):
-                eps = jnp.zeros(xi.shape[:2] + (p["V"].shape[0],), dtype)
-                hs = perturbed_states(p, jnp.asarray(xi), jnp.asarray(mi), eps, act, cell)
+                hs = _window_states(p, xi, mi, act=act, cell=cell)
             return np.asarray(hs[0])[: int(mi[0].sum())]  # (T, H), real steps only
 
         first = states_of(split, 0)

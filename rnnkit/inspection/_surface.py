@@ -22,12 +22,13 @@ against 2.9 cold (benchmarks/bench_first_result.py, side by side on a busy
 from __future__ import annotations
 
 import math
-from functools import partial
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 from jax import lax
+
+from ..training._stored import stored_jit
 
 from ..recurrent._cells import get_activation
 from ..recurrent._model import loss as model_loss
@@ -117,7 +118,7 @@ def _point_loss(p, xt, yt, m, w, count, *, act, task, mode):
     return total / count
 
 
-@partial(jax.jit, static_argnames=("act", "task", "mode", "batch", "cell"))
+@stored_jit(static_argnames=("act", "task", "mode", "batch", "cell"))
 def _grid_losses(params, d1, d2, points, xs, ys, mask, *, act, task, mode, batch, cell="elman"):
     """Loss at params + a d1 + b d2 for every (a, b) row of ``points`` (P, 2): (P,).
 
@@ -187,27 +188,33 @@ def _evaluate(result, split, d1, d2, points):
     n_points = len(points)
     points = np.concatenate([points, np.repeat(points[-1:], -n_points % batch, axis=0)])
     with precision(cfg.dtype):
-        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in result.params.items()}
-        d1 = {k: jnp.asarray(v, dtype) for k, v in d1.items()}
-        d2 = {k: jnp.asarray(v, dtype) for k, v in d2.items()}
-        ys = jnp.asarray(y) if cfg.task == "classification" else jnp.asarray(y, dtype)
-        values = _grid_losses(p, d1, d2, jnp.asarray(points, dtype), jnp.asarray(x, dtype), ys,
-                              None if mask is None else jnp.asarray(mask), act=cfg.activation,
+        p = {k: np.asarray(v, dtype) for k, v in result.params.items()}
+        d1 = {k: np.asarray(v, dtype) for k, v in d1.items()}
+        d2 = {k: np.asarray(v, dtype) for k, v in d2.items()}
+        ys = np.asarray(y) if cfg.task == "classification" else np.asarray(y, dtype)
+        values = _grid_losses(p, d1, d2, np.asarray(points, dtype), np.asarray(x, dtype), ys,
+                              None if mask is None else np.asarray(mask), act=cfg.activation,
                               task=cfg.task, mode=cfg.mode, batch=batch, cell=cfg.cell)
     return np.asarray(values, np.float64)[:n_points]
 
 
 def _directions(result, seed, how_many):
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"`seed` (={seed!r}) must be a whole number >= 0")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2 ** 32:
+        raise ValueError(f"`seed` (={seed!r}) must be a whole number from 0 to 2**32 - 1")
     from ..training._train import precision
 
     dtype = np.dtype(result.prepared.config.dtype)
     with precision(dtype.name):
-        params = {k: jnp.asarray(np.asarray(v), dtype) for k, v in result.params.items()}
-        keys = jax.random.split(jax.random.key(int(seed)), how_many)
-        return params, [{k: np.asarray(v) for k, v in random_direction(kk, params).items()}
-                        for kk in keys]
+        params = {k: np.asarray(v, dtype) for k, v in result.params.items()}
+        directions = _seeded_directions(params, np.asarray(seed, np.uint32), how_many=int(how_many))
+        return params, [{k: np.asarray(v) for k, v in d.items()} for d in directions]
+
+
+@stored_jit(static_argnames=("how_many",))
+def _seeded_directions(params, seed, *, how_many):
+    """``how_many`` random filter-normalised directions from ``seed``, as one program."""
+    keys = jax.random.split(jax.random.key(seed), how_many)
+    return [random_direction(keys[i], params) for i in range(how_many)]
 
 
 def loss_surface(result, *, split: str = "val", steps: int = 21, span: float = 1.0, seed: int = 0):

@@ -37,6 +37,7 @@ from ..sweeps._sweep import sweep
 from ._controls import (RANGES, build_controls, pair_box, read_config, read_lr, read_space,
                         set_slider, write_config)
 from ._backtest_view import backtest_view
+from ._data import loss_planes
 from ._views import FigureViews, caption, plural
 
 _COLOURS = {"info": "#36454f", "ok": "#1b6e3a", "warn": "#8a5a00", "error": "#b00020"}
@@ -144,6 +145,7 @@ class Panel:
         self.status_level = "info"
         self._thread: Optional[threading.Thread] = None
         self._viewer: Optional[threading.Thread] = None
+        self._measurer: Optional[threading.Thread] = None  # diagnostics and surfaces of a new run
         self._view_lock = threading.Lock()
         self._view_request = None
         self._generation = 0  # bumped by every new thing to show; older drawing stops
@@ -279,7 +281,7 @@ class Panel:
 
     def wait(self, timeout: Optional[float] = None) -> bool:
         """Wait for the background job and the figures it asked for; True when all are done."""
-        for attr in ("_thread", "_viewer", "_thread", "_viewer"):  # a job may start the viewer
+        for attr in ("_thread", "_viewer", "_measurer", "_thread", "_viewer", "_measurer"):  # a job may start the others
             t = getattr(self, attr)
             if t is not None:
                 t.join(timeout)
@@ -376,19 +378,49 @@ class Panel:
             return None
 
     # --- drawing one run, fastest figures first ---
+    def _measure(self, result) -> Callable[[], tuple]:
+        """Start measuring a run's diagnostics, then its loss planes, in a thread of their own.
+
+        The measures are compiled programs (they leave the interpreter free), so
+        they run while this thread draws the curve and the scores. Returns a
+        function that waits for the planes (re-raising what went wrong there);
+        ``result.diagnostics`` waits on its own lock.
+        """
+        box: dict = {}
+
+        def work():
+            try:
+                result.diagnostics  # noqa: B018 - measured here, read under its lock later
+                box["planes"] = loss_planes(result)
+            except BaseException as e:  # noqa: BLE001 - handed to the drawing thread
+                box["error"] = e
+
+        t = threading.Thread(target=work, name="rnnkit-panel-measure", daemon=True)
+        self._measurer = t
+        t.start()
+
+        def planes():
+            t.join()
+            if "error" in box:
+                raise box["error"]
+            return box["planes"]
+
+        return planes
+
     def _draw_run(self, result, made: str, still: Callable[[], bool]) -> None:
         """Curve, scores and forecast at once; then gradients and states; then the surfaces.
         Each slower page says it is computing until it is drawn; `still()` False stops."""
         self.result = result
         self.views.computing(("Gradients", "States"), "the gradients and states", made)
         self.views.computing(("Surface",), "the loss surface", made)
+        planes = self._measure(result)
         self.views.show_fast(result, made)
         if not still():
             return
         self.views.show_inside(result, made)
         if not still():
             return
-        self.views.show_surfaces(result, made)
+        self.views.show_surfaces(result, made, planes())
         if still():  # the run is named in the status and on every figure; the line stays short
             self.progress_label.value = "every page drawn" + (f" ({made.split('—')[-1].strip()})"
                                                               if "—" in made else "")
@@ -431,6 +463,7 @@ class Panel:
         self.result = result
         self.views.computing(("Gradients", "States"), "the gradients and states", made)
         self.views.computing(("Surface",), "the loss surface", made)
+        planes = self._measure(result)  # measured while the first figures are drawn
         self.views.show_fast(result, made)  # the curve and scores the moment training ends
         if status.startswith("diverged"):
             self.progress.bar_style = "danger"
@@ -446,7 +479,7 @@ class Panel:
         if self._closing:
             return
         self.progress_label.value = "drawing the loss surface..."
-        self.views.show_surfaces(result, made)
+        self.views.show_surfaces(result, made, planes())
         self._set_phase(None)
         self.progress_label.value = f"done: {status}"
 

@@ -374,9 +374,10 @@ class FigureViews:
         self._draw("States", "path", lambda: sized("path", plots.hidden_path, d.val_states,
                                                    times=d.val_times, caption=caption))
 
-    def show_surfaces(self, result, caption: str) -> None:
-        """Draw the loss-surface page (the slowest: many loss evaluations)."""
-        (a, b, surface), (s, values) = loss_planes(result)
+    def show_surfaces(self, result, caption: str, planes=None) -> None:
+        """Draw the loss-surface page (the slowest: many loss evaluations); ``planes``: what
+        ``loss_planes(result)`` gives, when it was computed already."""
+        (a, b, surface), (s, values) = loss_planes(result) if planes is None else planes
         self._current("Surface")
         self._note("Surface", "Left: validation loss on a random plane through the trained "
                               "weights, filter-normalised (Li et al. 2018); the colours span "

@@ -26,8 +26,10 @@ from __future__ import annotations
 
 import hashlib
 import logging
+import contextlib
 import os
 import sys
+import threading
 from pathlib import Path
 from typing import Optional, Union
 
@@ -47,6 +49,7 @@ _DIGEST = 16  # bytes of blake2b in front of each entry
 
 _log = logging.getLogger(__name__)
 _state = {"path": None}  # the folder rnnkit installed, or None
+_FRESH = threading.local()  # .on: this thread's compiles skip jax's store (see fresh_compiles)
 
 
 def default_dir() -> Optional[Path]:
@@ -98,6 +101,8 @@ class CheckedFiles(_Interface or object):
         return self._path / f"{key}{_SUFFIX}"
 
     def get(self, key: str) -> Optional[bytes]:
+        if getattr(_FRESH, "on", False):
+            return None
         try:
             data = self._file(key).read_bytes()
         except OSError:
@@ -108,12 +113,17 @@ class CheckedFiles(_Interface or object):
             return None
         return body
 
-    def put(self, key: str, value: bytes) -> None:
+    def put(self, key: str, value: bytes) -> bool:
+        """Write the entry; False (and nothing else) when it could not be written."""
+        if getattr(_FRESH, "on", False):
+            return False
         try:
             self._path.mkdir(parents=True, exist_ok=True)
             write_bytes(self._file(key), hashlib.blake2b(value, digest_size=_DIGEST).digest() + value)
         except OSError as e:  # a full disk or a read-only folder costs a compile, nothing else
             _log.debug("compilation cache entry %s not written: %s", key, e)
+            return False
+        return True
 
     def clear(self) -> None:
         for f in self._path.glob(f"*{_SUFFIX}"):
@@ -121,6 +131,40 @@ class CheckedFiles(_Interface or object):
                 f.unlink()
             except OSError:
                 pass
+
+
+def store_hooked() -> bool:
+    """True when jax's cache store is ours (so ``fresh_compiles`` can keep jax's store out)."""
+    return _cc is not None and _state["path"] is not None and isinstance(_cc._cache, CheckedFiles)
+
+
+@contextlib.contextmanager
+def fresh_compiles():
+    """In this thread, compile for real: jax's store neither answers nor keeps a program.
+
+    ``_stored`` keeps whole executables; it must serialise one that XLA
+    compiled, never one jax loaded from its own store: measured with this jax,
+    an executable loaded and serialised again fails when called in the next
+    process ("Function ... not found").
+    """
+    before = getattr(_FRESH, "on", False)
+    _FRESH.on = True
+    try:
+        with _no_store_writes():
+            yield
+    finally:
+        _FRESH.on = before
+
+
+def _no_store_writes():
+    """This thread's compiles skip jax's store write before jax serialises the program
+    (jax serialises first and asks the store after: work our store would only refuse)."""
+    try:
+        from jax._src import config as jax_config
+
+        return jax_config.persistent_cache_min_compile_time_secs(float("inf"))
+    except (ImportError, AttributeError, TypeError):
+        return contextlib.nullcontext()
 
 
 def _users_own_cache() -> bool:

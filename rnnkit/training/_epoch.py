@@ -34,6 +34,7 @@ from ..recurrent._model import loss as model_loss
 from ..recurrent._model import loss_counted as model_loss_counted
 from ..recurrent._model import outputs as model_outputs
 from ._optim import hyperparams, make_optimizer
+from ._stored import StoredProgram
 
 # Elements of one (batch, window, hidden) state array in an evaluation batch. Measured
 # here: forward passes slow down 2-5x once that array outgrows the CPU caches (a few MiB);
@@ -279,9 +280,9 @@ def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, s
            int(batch), int(val_batch), int(steps), str(cell), bool(uniform))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build_epoch(task, mode, optimizer, bool(clipping), np.dtype(dtype),
-                                       int(batch), int(val_batch), int(steps), str(cell),
-                                       bool(uniform))
+            _CACHE[key] = StoredProgram(
+                _build_epoch(task, mode, optimizer, bool(clipping), np.dtype(dtype), int(batch),
+                             int(val_batch), int(steps), str(cell), bool(uniform)), key)
         return _CACHE[key]
 
 
@@ -311,8 +312,8 @@ def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cel
            int(hidden), int(n_out), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build_init(optimizer, bool(clipping), np.dtype(dtype), str(scheme),
-                                      int(n_in), int(hidden), int(n_out), str(cell))
+            _CACHE[key] = StoredProgram(_build_init(optimizer, bool(clipping), np.dtype(dtype), str(scheme),
+                                      int(n_in), int(hidden), int(n_out), str(cell)), key)
         return _CACHE[key]
 
 
@@ -336,5 +337,5 @@ def outputs_program(*, mode, steps, cell="elman"):
     key = ("outputs", mode, int(steps), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build_outputs(mode, int(steps), str(cell))
+            _CACHE[key] = StoredProgram(_build_outputs(mode, int(steps), str(cell)), key)
         return _CACHE[key]

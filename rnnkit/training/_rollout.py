@@ -19,6 +19,7 @@ from jax import lax
 
 from ..recurrent._model import outputs as model_outputs
 from ._epoch import _COMPILER_OPTIONS
+from ._stored import StoredProgram
 
 _LOCK = threading.Lock()
 _CACHE = {}  # (steps, leads, blocks, fed, cell) -> jitted function
@@ -63,7 +64,7 @@ def rollout_program(*, steps: int, leads: int, blocks: int, fed: int, cell: str 
     key = (int(steps), int(leads), int(blocks), int(fed), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = _build(*key)
+            _CACHE[key] = StoredProgram(_build(*key), ("rollout",) + key)
         return _CACHE[key]
 
 
@@ -74,6 +75,6 @@ def rollout(params: dict, buffer: np.ndarray, act, *, steps: int, leads: int, bl
 
     dtype = np.dtype(np.asarray(params["U"]).dtype)
     with precision(dtype.name):
-        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in params.items()}
+        p = {k: np.asarray(v, dtype) for k, v in params.items()}
         program = rollout_program(steps=steps, leads=leads, blocks=blocks, fed=fed, cell=cell)
-        return np.asarray(program(p, jnp.asarray(buffer, dtype), jnp.asarray(act)))
+        return np.asarray(program(p, np.asarray(buffer, dtype), np.asarray(act)))

@@ -22,7 +22,6 @@ import time
 from typing import Callable, Dict, NamedTuple, Optional, Sequence
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
@@ -124,9 +123,9 @@ def _series(prepared, dtype, shapes) -> _epoch.Series:
     if extra:
         x = np.concatenate([x, np.zeros((extra,) + x.shape[1:], x.dtype)])
         y = np.concatenate([y, np.zeros((extra,) + y.shape[1:], y.dtype)])
-    return _epoch.Series(jnp.asarray(x), jnp.asarray(y),
-                         jnp.asarray(shapes["window"] - prepared.window, jnp.int32),
-                         jnp.asarray(0 if prepared.leads > 1 else prepared.horizon, jnp.int32))
+    return _epoch.Series(*jax.device_put((x, y, np.asarray(shapes["window"] - prepared.window, np.int32),
+                                          np.asarray(0 if prepared.leads > 1 else prepared.horizon,
+                                                     np.int32))))
 
 
 def _split(prepared, split: str, entries: int) -> _epoch.Split:
@@ -257,10 +256,12 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
         y_val = prepared.targets[prepared.target_rows("val")] if watch_accuracy else None
         best = ((math.inf, math.inf) if watch_accuracy else math.inf, 0, state[0])  # (watched, epoch, params)
         rows, status = [], "ok"
-        from tqdm.auto import tqdm  # on first use: it loads asyncio, which `import rnnkit` need not
+        if progress:
+            from tqdm.auto import tqdm  # on first use: it loads asyncio, which `import rnnkit` need not
 
-        bar = tqdm(total=config.epochs, desc="training", unit="epoch", disable=not progress,
-                   leave=False)
+            bar = tqdm(total=config.epochs, desc="training", unit="epoch", leave=False)
+        else:
+            bar = _NoBar()
         try:
             for epoch in range(1, config.epochs + 1):
                 # 2. one epoch = one call of the compiled program, one host sync
@@ -291,6 +292,19 @@ def train(prepared, config: Config, *, shapes: Optional[dict] = None, progress: 
     return TrainOutcome(params, history, status, int(best[1]),
                         _epoch.thread_compile_count() - compiles0, time.perf_counter() - t0,
                         "val_accuracy" if watch_accuracy else ("val_loss" if has_val else "train_loss"))
+
+
+class _NoBar:
+    """What ``train`` asks of a progress bar, doing nothing (progress=False imports no tqdm)."""
+
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def set_postfix(self, **values) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
 
 
 def _accuracy(params, prepared, shapes, y_val) -> float:
@@ -340,8 +354,7 @@ def _setup(prepared, config: Config, dims: Dict[str, int], uniform: bool = False
                                    val_batch=val_batch, steps=dims["window"], cell=config.cell,
                                    uniform=uniform)
     return state, _Run(program, _series(prepared, dtype, dims),
-                       jax.tree.map(jnp.asarray, train_split), jax.tree.map(jnp.asarray, val_split),
-                       jnp.asarray(activation_index(config.activation)))
+                       *jax.device_put((train_split, val_split, activation_index(config.activation))))
 
 
 def _judge(row: dict, finite: bool, has_val: bool, best: tuple, params, patience, stop, score=None):
@@ -407,7 +420,7 @@ def evaluate(params: dict, prepared, split: str, activation=None, *, shapes: Opt
     with precision(dtype.name):
         series = _series(prepared, dtype, dims)
         whole = _split(prepared, split, _round_up(n, batch_size))
-        p = {k: jnp.asarray(np.asarray(v), dtype) for k, v in params.items()}
+        p = jax.device_put({k: np.asarray(v, dtype) for k, v in params.items()})
         program = _epoch.outputs_program(mode=mode, steps=dims["window"],
                                          cell=prepared.config.cell if cell is None else cell)
         parts = []
