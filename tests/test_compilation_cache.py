@@ -64,7 +64,7 @@ def _whole(folder):
 
 
 def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_path, monkeypatch):
-    monkeypatch.setenv("RNNKIT_WHOLE_PROGRAMS", "1")  # whole programs on disk: asked for (_stored)
+    monkeypatch.delenv("RNNKIT_WHOLE_PROGRAMS", raising=False)  # whole programs on disk: the default
     cache = tmp_path / "programs"
     first = _probe(cache)
     assert first["folder"] == str(cache)
@@ -74,7 +74,8 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
 
     # A second process loads every kept program: nothing is traced, lowered or compiled.
     second = _probe(cache)
-    assert second["whole"] == {"loaded": len(_whole(cache)), "compiled": 0, "written": 0}
+    assert second["whole"] == {"loaded": len(_whole(cache)), "compiled": 0, "written": 0,
+                               "dropped": 0, "held": len(_whole(cache))}
     assert second["misses"] == 0  # nor does any other program miss jax's entries
     assert second["val_loss"] == first["val_loss"] and second["V"] == first["V"]
     files = sorted(_whole(cache), key=lambda f: -f.stat().st_size)
@@ -105,8 +106,8 @@ def test_a_second_process_loads_the_programs_and_damage_is_compiled_again(tmp_pa
     assert all(store.get(f.name[:-len("-rnnkit")]) is not None for f in kept_by_jax)
 
 
-def test_by_default_a_second_process_loads_through_jax_entries(tmp_path, monkeypatch):
-    monkeypatch.delenv("RNNKIT_WHOLE_PROGRAMS", raising=False)
+def test_with_whole_programs_off_a_second_process_loads_through_jax_entries(tmp_path, monkeypatch):
+    monkeypatch.setenv("RNNKIT_WHOLE_PROGRAMS", "0")
     cache = tmp_path / "programs"
     first = _probe(cache)
     assert first["whole"]["written"] == 0 and first["misses"] >= 2  # at least epoch and init

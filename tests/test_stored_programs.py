@@ -4,6 +4,9 @@ The cross-process behaviour (a second process loads, damage is compiled
 again) is in tests/test_compilation_cache.py; here, in one process: what makes
 a new entry, what is never kept, and a loaded entry that cannot run.
 """
+import gc
+import os
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -15,7 +18,7 @@ from rnnkit.training import _cache, _stored
 
 @pytest.fixture
 def folder(tmp_path, monkeypatch):
-    monkeypatch.setenv(_stored.ENV, "1")  # kept on disk only when asked (see _stored.on_disk)
+    monkeypatch.delenv(_stored.ENV, raising=False)  # kept on disk: the default (see _stored.on_disk)
     before = _cache.cache_dir()
     rnnkit.compilation_cache(tmp_path / "programs")
     yield tmp_path / "programs"
@@ -23,7 +26,7 @@ def folder(tmp_path, monkeypatch):
 
 
 def _program(fn, key):
-    return _stored.StoredProgram(jax.jit(fn), key)
+    return _stored.StoredProgram(lambda: jax.jit(fn), key)
 
 
 def _whole(folder):
@@ -131,6 +134,61 @@ def test_fresh_compiles_keep_jax_store_out(folder):
     with _cache.fresh_compiles():
         assert store.get("k") is None and store.put("k2", b"x") is False
     assert store.get("k") == b"bytes" and store.get("k2") is None
+
+
+def _fresh_program(key):
+    """A program whose jitted function is a new function object each time it is built (as
+    rnnkit's builders make theirs), so jax's caches keyed on it let go when it is rebuilt."""
+    def build():
+        def f(x):
+            return jnp.cumsum(jnp.tanh(x) * 2.0, axis=0) @ x.T
+        return jax.jit(f)
+    return _stored.StoredProgram(build, key)
+
+
+def test_compiled_forms_are_kept_within_the_bound_least_recently_used_first(monkeypatch):
+    monkeypatch.setattr(_stored, "KEPT", 4)
+    a, b, c = (_fresh_program(("test", "bound", k)) for k in "abc")
+    x = [np.ones((n, 2), np.float32) for n in range(1, 7)]
+    for v in x[:2]:
+        a(v)
+    for v in x[:2]:
+        b(v)
+    assert len(a._compiled) == 2 and len(b._compiled) == 2
+    a(x[0])  # a is now the more recently used
+    before = _stored.counts()
+    c(x[0])  # 5 forms: b, used longest ago, lets its two go
+    assert len(a._compiled) == 2 and len(b._compiled) == 0 and len(c._compiled) == 1
+    assert _stored.counts()["dropped"] - before["dropped"] == 2
+    for v in x:  # one program past the bound alone keeps the newest form
+        np.testing.assert_allclose(c(v), np.cumsum(np.tanh(v) * 2, axis=0) @ v.T, rtol=1e-5)
+    held = sum(len(p._compiled) for p in (a, b, c))
+    assert held <= 4 and (6, 2) in [sig[1][0][0] for sig in c._compiled]
+    # a program that let its forms go still answers (compiled again)
+    np.testing.assert_allclose(b(x[1]), np.cumsum(np.tanh(x[1]) * 2, axis=0) @ x[1].T, rtol=1e-5)
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/maps"), reason="memory mappings are read from Linux's /proc")
+def test_memory_mappings_stop_growing_under_the_bound(monkeypatch):
+    # Linux caps the mappings of one process (vm.max_map_count, 65,530 by default: the kernel's
+    # Documentation/admin-guide/sysctl/vm.rst); past it, XLA crashes while compiling. Each compiled
+    # program holds some; with the bound, compiling more distinct programs must not add more.
+    def mappings():
+        with open("/proc/self/maps") as f:
+            return sum(1 for _ in f)
+
+    monkeypatch.setattr(_stored, "KEPT", 3)
+    programs = [_fresh_program(("test", "mappings", k)) for k in range(40)]
+    v = np.ones((5, 3), np.float32)
+    for p in programs[:10]:  # let the process settle (first compiles map shared pieces)
+        p(v)
+    gc.collect()
+    settled = mappings()
+    for p in programs[10:]:
+        p(v)
+    gc.collect()
+    unbounded_guess = 30 * 5  # each program of this size holds well over 5 mappings
+    assert mappings() - settled < unbounded_guess / 3, (mappings(), settled)
 
 
 @pytest.mark.parametrize("n, dtype", [(1, "float32"), (7, "float32"), (32, "float32"), (32, "float64")])

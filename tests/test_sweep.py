@@ -274,8 +274,9 @@ def _pooled_equal_serial(sunspots, made):
     seen = []
     pooled = sweep(sunspots, BASE, space, workers=2, progress=False,
                    on_run=lambda rec: seen.extend(os.listdir(made[0])))
-    # The workers wrote their compiled programs to one shared directory, gone afterwards.
-    assert any(name.startswith("jit_epoch") for name in seen), seen
+    # The workers wrote their compiled programs to one shared directory, gone afterwards
+    # (jax's entries, or rnnkit's whole programs: rnnkit/training/_stored.py).
+    assert any(name.startswith(("jit_epoch", "whole-")) for name in seen), seen
     assert not os.path.exists(made[0])
     cols = [c for c in serial.table.columns if "_val_" in c or "_test_" in c
             or c.startswith(("val_", "test_"))]

@@ -21,6 +21,7 @@ bumps a counter (``compile_count``).
 from __future__ import annotations
 
 import threading
+from functools import partial
 from typing import NamedTuple
 
 import jax
@@ -281,8 +282,8 @@ def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, s
     with _LOCK:
         if key not in _CACHE:
             _CACHE[key] = StoredProgram(
-                _build_epoch(task, mode, optimizer, bool(clipping), np.dtype(dtype), int(batch),
-                             int(val_batch), int(steps), str(cell), bool(uniform)), key)
+                partial(_build_epoch, task, mode, optimizer, bool(clipping), np.dtype(dtype), int(batch),
+                        int(val_batch), int(steps), str(cell), bool(uniform)), key)
         return _CACHE[key]
 
 
@@ -312,8 +313,9 @@ def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cel
            int(hidden), int(n_out), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = StoredProgram(_build_init(optimizer, bool(clipping), np.dtype(dtype), str(scheme),
-                                      int(n_in), int(hidden), int(n_out), str(cell)), key)
+            _CACHE[key] = StoredProgram(partial(_build_init, optimizer, bool(clipping), np.dtype(dtype),
+                                                str(scheme), int(n_in), int(hidden), int(n_out),
+                                                str(cell)), key)
         return _CACHE[key]
 
 
@@ -337,5 +339,5 @@ def outputs_program(*, mode, steps, cell="elman"):
     key = ("outputs", mode, int(steps), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = StoredProgram(_build_outputs(mode, int(steps), str(cell)), key)
+            _CACHE[key] = StoredProgram(partial(_build_outputs, mode, int(steps), str(cell)), key)
         return _CACHE[key]

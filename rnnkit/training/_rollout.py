@@ -11,6 +11,7 @@ both). Every block, for every sequence at once, runs inside ONE jitted
 from __future__ import annotations
 
 import threading
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -64,7 +65,7 @@ def rollout_program(*, steps: int, leads: int, blocks: int, fed: int, cell: str 
     key = (int(steps), int(leads), int(blocks), int(fed), str(cell))
     with _LOCK:
         if key not in _CACHE:
-            _CACHE[key] = StoredProgram(_build(*key), ("rollout",) + key)
+            _CACHE[key] = StoredProgram(partial(_build, *key), ("rollout",) + key)
         return _CACHE[key]
 
 

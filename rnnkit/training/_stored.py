@@ -22,6 +22,16 @@ own cache still helps there) and the entry written again. With the cache off
 (``compilation_cache(None)``, ``RNNKIT_CACHE_DIR=off``) only the memory part
 is used; with ``jax_disable_jit`` the function runs as plain Python.
 
+How many are kept at once. A compiled program holds memory mappings of its
+machine code (a fit's three programs, about 600 on this jax), and Linux lets one
+process hold 65,530 by default (``vm.max_map_count``); a process past that
+crashes inside XLA. A long notebook
+session or a sweep in one process meets every shape once, so the programs of
+this process are kept to ``KEPT`` compiled forms in all: past it, the program
+used longest ago lets all of its compiled forms go (its jitted function is
+built afresh, so jax's own caches, keyed on that function, let them go too).
+A program needed again is loaded from the folder or compiled again.
+
 Safety: loading an entry runs machine code that was compiled into it, as
 loading jax's own cache entries does. Keep the folder yours (the default, in
 your home, is), never a folder other people can write to.
@@ -30,12 +40,14 @@ from __future__ import annotations
 
 import functools
 import hashlib
+import itertools
 import logging
 import os
 import pickle
 import platform
 import re
 import threading
+import weakref
 from pathlib import Path
 from typing import Callable, Dict, Optional
 
@@ -46,30 +58,40 @@ from . import _cache
 _log = logging.getLogger(__name__)
 _PREFIX = "whole-"  # file names: whole-<digest>-rnnkit, beside jax's entries
 _FORMAT = 2  # bump when what an entry holds changes
-_COUNTS = {"loaded": 0, "compiled": 0, "written": 0}  # this process, all programs
+_COUNTS = {"loaded": 0, "compiled": 0, "written": 0, "dropped": 0}  # this process, all programs
 _COUNT_LOCK = threading.Lock()
 _FINGERPRINT: Dict[str, str] = {}
+
+# Compiled forms kept by all programs of this process at once (see the module's docstring).
+# Measured on this jax: about 200 memory mappings per training program; with no bound the
+# full test suite in one process reached 64,609 mappings (of 65,530) and crashed once a few
+# more programs were compiled. 64 forms: about 13,000 mappings, several fits' worth.
+KEPT = 64
+_PROGRAMS: "weakref.WeakSet[StoredProgram]" = weakref.WeakSet()
+_PROGRAMS_LOCK = threading.Lock()
+_CLOCK = itertools.count()  # last-use stamps
 
 
 ENV = "RNNKIT_WHOLE_PROGRAMS"
 
 
 def on_disk() -> bool:
-    """True when ``RNNKIT_WHOLE_PROGRAMS=1``: programs are kept whole in the cache folder too.
+    """True unless ``RNNKIT_WHOLE_PROGRAMS=0``: programs are kept whole in the cache folder too.
 
-    Off by default: the whole test suite in one process (hundreds of programs
-    compiled, serialised and some loaded, torch loaded beside jax) crashed
-    inside XLA's compiler late in the run, reproducibly, with this on, and not
-    with it off; the cause is not found yet. Off, compiled programs are kept in
-    memory here and on disk by jax's own cache (``_cache``), as before.
+    Off, compiled programs are kept in memory here and on disk by jax's own
+    cache only (``_cache``): a fresh process then traces and lowers them again.
     """
-    return os.environ.get(ENV, "").strip() == "1"
+    return os.environ.get(ENV, "").strip() != "0"
 
 
 def counts() -> Dict[str, int]:
-    """Programs of this process: loaded from the folder, compiled, written to it."""
+    """Programs of this process: loaded from the folder, compiled, written to it, and let go
+    ("dropped") to stay within ``KEPT``; "held" is how many compiled forms are kept now."""
     with _COUNT_LOCK:
-        return dict(_COUNTS)
+        out = dict(_COUNTS)
+    with _PROGRAMS_LOCK:
+        out["held"] = sum(len(p._compiled) for p in list(_PROGRAMS))
+    return out
 
 
 def _bump(name: str) -> None:
@@ -132,29 +154,52 @@ class StoredProgram:
     Called like the jitted function (positional arguments only); returns the same values.
 
     Args:
-      jitted: the ``jax.jit`` of the function.
+      build: makes the ``jax.jit`` of the function, each call a new one (a program
+        that lets its compiled forms go builds its jitted function again).
       key: the static choices the function was built from (part of every disk key).
     """
 
-    def __init__(self, jitted: Callable, key: tuple):
-        self._jitted = jitted
-        self.__wrapped__ = getattr(jitted, "__wrapped__", jitted)  # the Python function
+    def __init__(self, build: Callable[[], Callable], key: tuple):
+        self._build = build
+        self._jitted = build()
         self._key = repr(key)
         self._compiled: dict = {}
+        self._used = next(_CLOCK)
         self._lock = threading.Lock()
+        with _PROGRAMS_LOCK:
+            _PROGRAMS.add(self)
+
+    @property
+    def __wrapped__(self):
+        """The Python function."""
+        return getattr(self._jitted, "__wrapped__", self._jitted)
 
     def __call__(self, *args):
         if jax.config.jax_disable_jit:
             return self._jitted(*args)
         leaves, tree = jax.tree.flatten(args)
         sig = (tree, tuple(_leaf_type(x) for x in leaves), _settings())
+        self._used = next(_CLOCK)
         fn = self._compiled.get(sig)
         if fn is None:
             with self._lock:
                 fn = self._compiled.get(sig)
                 if fn is None:
-                    fn = self._compiled[sig] = self._obtain(args, sig)
+                    fn = self._obtain(args, sig)
+                    self._compiled[sig] = fn
+            _keep_within(self, sig, fn)
         return fn(*args)
+
+    def _drop(self, keep: Optional[tuple] = None) -> int:
+        """Let every compiled form go (but ``keep``: (sig, fn)); the number let go.
+
+        Replaces objects without taking this program's lock: a call compiling in
+        another thread keeps its own references and stores its result in the new dict.
+        """
+        gone = len(self._compiled) - (keep is not None)
+        self._jitted = self._build()
+        self._compiled = {keep[0]: keep[1]} if keep is not None else {}
+        return gone
 
     def lower(self, *args):
         """The jitted function's ``lower`` (for inspection; not stored)."""
@@ -254,9 +299,32 @@ def _save(store, entry: str, compiled) -> bool:
     return store.put(entry, data)
 
 
-def stored(jitted: Callable, key: tuple) -> StoredProgram:
-    """``StoredProgram(jitted, key)``."""
-    return StoredProgram(jitted, key)
+def _keep_within(program: StoredProgram, sig, fn) -> None:
+    """After ``program`` compiled ``sig``: past ``KEPT`` compiled forms in this process, the
+    programs used longest ago let theirs go; ``program`` itself keeps at least ``sig``."""
+    with _PROGRAMS_LOCK:
+        programs = [p for p in list(_PROGRAMS) if p._compiled]
+        held = sum(len(p._compiled) for p in programs)
+        if held <= KEPT:
+            return
+        dropped = 0
+        for p in sorted((p for p in programs if p is not program), key=lambda p: p._used):
+            if held <= KEPT:
+                break
+            n = p._drop()
+            held -= n
+            dropped += n
+        if held > KEPT:  # this program alone holds more: it keeps the form just made
+            n = program._drop(keep=(sig, fn))
+            held -= n
+            dropped += n
+    with _COUNT_LOCK:
+        _COUNTS["dropped"] += dropped
+    _log.debug("kept programs: %d compiled forms let go, %d held", dropped, held)
+
+
+def _jit_of(fn, kwargs, jit_options):
+    return jax.jit(functools.partial(fn, **kwargs), **jit_options)  # a new function object each time
 
 
 def stored_jit(*, static_argnames: tuple = (), **jit_options):
@@ -282,8 +350,8 @@ def stored_jit(*, static_argnames: tuple = (), **jit_options):
                 with lock:
                     program = programs.get(static)
                     if program is None:
-                        jitted = jax.jit(functools.partial(fn, **kwargs), **jit_options)
-                        program = programs[static] = StoredProgram(jitted, name + static)
+                        build = functools.partial(_jit_of, fn, kwargs, jit_options)
+                        program = programs[static] = StoredProgram(build, name + static)
             return program(*args)
 
         return call
