@@ -43,7 +43,8 @@ def test_initial_state_equals_the_op_by_op_state(dtype, init, seed, scale, optim
     with precision(dtype):
         k_init, k_shuffle = jax.random.split(jax.random.key(seed))
         params = init_params(k_init, 3, 6, 2, scheme=init, recurrent_scale=scale, dtype=np.dtype(dtype))
-        expected = (params, init_state(optimizer, cfg.lr, clip, wd, params), k_shuffle)
+        expected = (params, tuple(jax.tree.leaves(init_state(optimizer, cfg.lr, clip, wd, params))),
+                    k_shuffle)
         got = initial_state(_Sizes(), cfg)
     if init == "orthogonal":
         # The orthogonal V is a loop of Householder reflections (recurrent/_cells._orthogonal):
@@ -92,7 +93,7 @@ def test_gated_initial_state_equals_init_params(cell, init, dtype):
         k_init, k_shuffle = jax.random.split(jax.random.key(4))
         params = init_params(k_init, 3, 5, 2, scheme=init, recurrent_scale=0.8, dtype=np.dtype(dtype),
                              cell=cell)
-        expected = (params, init_state("adam", cfg.lr, 1.0, 0.0, params), k_shuffle)
+        expected = (params, tuple(jax.tree.leaves(init_state("adam", cfg.lr, 1.0, 0.0, params))), k_shuffle)
         got = initial_state(_Sizes(), cfg)
     if init == "orthogonal":
         # The orthogonal V is a loop of Householder reflections (recurrent/_cells._orthogonal):

@@ -211,7 +211,8 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
 
     def epoch(state, series: Series, train: Split, val: Split, act):
         _count_trace()
-        params, opt_state, key = state
+        params, opt_leaves, key = state
+        opt_state = jax.tree.unflatten(jax.tree.structure(jax.eval_shape(opt.init, params)), opt_leaves)
         key, sub = jax.random.split(key)
         order = _shuffle(sub, train.starts.shape[0], train.n)
         n_batches = (train.n + batch - 1) // batch
@@ -260,7 +261,7 @@ def _build_epoch(task, mode, optimizer, clipping, dtype, batch, val_batch, steps
                                steps=steps, batch=val_batch, cell=cell, uniform=uniform)
         stats = EpochStats(total / jnp.maximum(count, 1), norms / jnp.maximum(i, 1).astype(dtype),
                            val_loss, i, finite)
-        return (params, opt_state, key), stats
+        return (params, tuple(jax.tree.leaves(opt_state)), key), stats
 
     return jax.jit(epoch, compiler_options=_COMPILER_OPTIONS)
 
@@ -270,7 +271,8 @@ def epoch_program(*, task, mode, optimizer, clipping, dtype, batch, val_batch, s
     """The cached jitted epoch function for these static choices.
 
     ``f(state, series, train, val, act) -> (state, EpochStats)`` with state
-    (params, opt_state, key) and ``act`` the int32 activation index. Array
+    (params, opt_leaves, key), ``opt_leaves`` the tuple ``jax.tree.leaves`` of the
+    optimizer's state (see ``init_program``), and ``act`` the int32 activation index. Array
     shapes (rows, features, outputs, hidden, numbers of windows) are the only
     other things that trigger a new compile. ``cell`` is static: one program per cell.
     ``uniform`` (static): every real window of both splits has ``steps`` steps (no
@@ -294,13 +296,18 @@ def _build_init(optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cell):
         # The seed's key is split in two: the first half initialises, the second shuffles.
         k_init, k_shuffle = jax.random.split(jax.random.key(seed))
         params = init_traceable(cell, k_init, n_in, hidden, n_out, scheme, scale, dtype)
-        return params, factory(**hyper).init(params), k_shuffle
+        return params, tuple(jax.tree.leaves(factory(**hyper).init(params))), k_shuffle
 
     return jax.jit(init, compiler_options=_COMPILER_OPTIONS)
 
 
 def init_program(*, optimizer, clipping, dtype, scheme, n_in, hidden, n_out, cell="elman"):
-    """The cached jitted ``f(seed, scale, hyper) -> (params, opt_state, key)``.
+    """The cached jitted ``f(seed, scale, hyper) -> (params, opt_leaves, key)``.
+
+    ``opt_leaves`` is the tuple of leaves of optax's state, not the state itself:
+    the trees at a program's edge are pickled with a program kept whole, and
+    optax's classes in them would make loading it import optax (0.07 s of a
+    fresh process's first fit); the epoch program rebuilds the state inside.
 
     The initial training state as ONE compiled program: done op by op, its
     ~30 small eager operations each compiled once per process (about 1.5 s).

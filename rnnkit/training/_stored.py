@@ -161,13 +161,22 @@ class StoredProgram:
 
     def __init__(self, build: Callable[[], Callable], key: tuple):
         self._build = build
-        self._jitted = build()
+        self._made = None  # the jitted function, made when first needed (see _jitted)
         self._key = repr(key)
         self._compiled: dict = {}
         self._used = next(_CLOCK)
         self._lock = threading.Lock()
         with _PROGRAMS_LOCK:
             _PROGRAMS.add(self)
+
+    @property
+    def _jitted(self):
+        """The jitted function, made on first use: a program loaded whole never needs it
+        (nor what building it imports: optax for the training programs, about 0.07 s)."""
+        made = self._made
+        if made is None:
+            made = self._made = self._build()
+        return made
 
     @property
     def __wrapped__(self):
@@ -195,9 +204,11 @@ class StoredProgram:
 
         Replaces objects without taking this program's lock: a call compiling in
         another thread keeps its own references and stores its result in the new dict.
+        The jitted function goes too (jax's caches are keyed on it); it is made again
+        when next needed.
         """
         gone = len(self._compiled) - (keep is not None)
-        self._jitted = self._build()
+        self._made = None
         self._compiled = {keep[0]: keep[1]} if keep is not None else {}
         return gone
 

@@ -1,6 +1,6 @@
 """The training loop: a Prepared and a Config in, trained parameters and a history out.
 
-Training state is (params, opt_state, key). Each epoch is one compiled program
+Training state is (params, opt_leaves, key). Each epoch is one compiled program
 (``_epoch.epoch_program``); this module only packs the data for it, keeps the
 best parameters, decides when to stop and reports progress. Between epochs the
 host reads five numbers and nothing else.
@@ -154,7 +154,8 @@ def activation_index(activation) -> np.ndarray:
 
 
 def initial_state(prepared, config: Config):
-    """The training state ``train`` starts from: (params, opt_state, shuffling key).
+    """The training state ``train`` starts from: (params, opt_leaves, shuffling key), with
+    ``opt_leaves`` the tuple ``jax.tree.leaves`` of optax's state for the optimizer.
 
     ``prepared`` needs ``n_inputs`` and ``net_outputs`` (outputs x leads; anything with
     only ``n_outputs`` is taken as one lead).
@@ -336,7 +337,7 @@ def _mask_free(prepared, config: Config, shapes) -> bool:
 
 
 def _setup(prepared, config: Config, dims: Dict[str, int], uniform: bool = False):
-    """The initial state (params, opt_state, key) and the _Run for this call.
+    """The initial state (params, opt_leaves, key) and the _Run for this call.
 
     ``uniform``: the run is not padded (no ``shapes``) and every window has full length,
     so the epoch program may run the recurrence without holding the state. Runs given
