@@ -239,6 +239,20 @@ def test_future_labels_integers_and_periods():
         future_labels(pd.Index([1, 2, 4]), 2)
 
 
+def test_future_labels_whole_numbers_kept_as_floats():
+    # statsmodels ships the yearly sunspot numbers with YEAR as float64 (1700.0 ... 2008.0):
+    # open data whose time column a practitioner passes as it comes.
+    sm = pytest.importorskip("statsmodels.api")
+    years = sm.datasets.sunspots.load_pandas().data["YEAR"]
+    assert years.dtype == np.float64 and years.iloc[-1] == 2008.0
+    got = future_labels(pd.Index(years), 3)
+    assert got.dtype == np.float64 and list(got) == [2009.0, 2010.0, 2011.0]
+    with pytest.raises(DataError, match="unequal steps"):
+        future_labels(pd.Index([1.0, 2.0, 4.0]), 2)
+    with pytest.raises(DataError, match="whole numbers"):
+        future_labels(pd.Index([0.5, 1.0, 1.5]), 2)
+
+
 def _with_feature(n=120, seed=0):
     # Invented only as a frame layout for the input-columns path (no claim about its numbers).
     rng = np.random.default_rng(seed)
