@@ -6,6 +6,7 @@ a new entry, what is never kept, and a loaded entry that cannot run.
 """
 import gc
 import os
+import weakref
 
 import jax
 import jax.numpy as jnp
@@ -90,6 +91,20 @@ def test_a_loaded_entry_that_cannot_run_is_compiled_again(folder):
     # ... and the entry now holds the right program
     np.testing.assert_array_equal(_program(lambda v: v * 2.0, ("test", "double"))(x), x * 2.0)
     assert _stored.counts()["compiled"] == after["compiled"]
+
+
+def test_a_loaded_program_keeps_no_argument_of_its_first_call(folder):
+    # The first call's arrays (in a fit, the whole series) must not live as long as the program.
+    _program(lambda v: v - 3.0, ("test", "minus-three"))(np.zeros(5, np.float32))  # writes the entry
+    loaded = _program(lambda v: v - 3.0, ("test", "minus-three"))
+    big = np.arange(5, dtype=np.float32)
+    gone = weakref.ref(big)
+    before = _stored.counts()
+    np.testing.assert_array_equal(loaded(big), big - 3.0)
+    assert _stored.counts()["loaded"] - before["loaded"] == 1
+    del big
+    gc.collect()
+    assert gone() is None
 
 
 def test_programs_that_call_the_host_are_not_kept(folder):

@@ -230,7 +230,9 @@ class StoredProgram:
             loaded = _load(store, entry)
             if loaded is not None:
                 _bump("loaded")
-                return _FirstCallChecked(loaded, lambda: self._compile(args, store, entry))
+                # the recompile takes the failing call's arguments: holding the first call's
+                # here would keep its arrays (the whole series) alive as long as the program
+                return _FirstCallChecked(loaded, lambda *a: self._compile(a, store, entry))
         return self._compile(args, store, entry)
 
     def _compile(self, args, store, entry):
@@ -251,7 +253,7 @@ class _FirstCallChecked:
 
     A loaded entry that cannot run (built by another jax, a damaged executable)
     fails on its first call; that call is then made again with a program
-    compiled afresh (``recompile``), which also replaces the entry. Calls are
+    compiled afresh (``recompile(*args)``), which also replaces the entry. Calls are
     only made asynchronous again once one has succeeded.
     """
 
@@ -268,9 +270,10 @@ class _FirstCallChecked:
         except Exception as e:  # noqa: BLE001 - any failure of a loaded program: compile it afresh
             _log.debug("stored program failed on its first call (%s: %s): compiling again",
                        type(e).__name__, e)
-            self._fn = self._recompile()
+            self._fn = self._recompile(*args)
             out = self._fn(*args)
         self._trusted = True
+        self._recompile = None
         return out
 
 
